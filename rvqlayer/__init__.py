@@ -1,0 +1,30 @@
+"""rvqlayer: a multi-stage (residual) vector quantizer for neural codec bottlenecks.
+
+Core imports need only torch, numpy and einops; the Lightning callback lives
+in :mod:`rvqlayer.callbacks` and is imported on demand.
+"""
+
+from ._checks import RvqlayerError
+from .bitrate import bitrate, bits_per_vector
+from .codebook import Codebook
+from .health import HealthReport, StageHealth
+from .kmeans import KMeansResult, fit_kmeans
+from .quantizer import MultiStageQuantizer, QuantizerOutput
+from .search import beam_encode, nearest_code
+
+__all__ = [
+    "Codebook",
+    "HealthReport",
+    "KMeansResult",
+    "MultiStageQuantizer",
+    "QuantizerOutput",
+    "RvqlayerError",
+    "StageHealth",
+    "beam_encode",
+    "bitrate",
+    "bits_per_vector",
+    "fit_kmeans",
+    "nearest_code",
+]
+
+__version__ = "0.1.0"

@@ -1,0 +1,59 @@
+"""Collective operations that are no-ops outside ``torch.distributed``.
+
+Two kinds of traffic are kept apart: :func:`all_reduce_sum`, :func:`broadcast`
+and :func:`gather_rows` keep codebooks identical and run inside the training
+step; :func:`gather_for_report` is for health reporting only.
+"""
+
+from __future__ import annotations
+
+import torch
+import torch.distributed as dist
+
+
+def is_distributed() -> bool:
+    """True when a process group is initialised with more than one rank."""
+    return dist.is_available() and dist.is_initialized() and dist.get_world_size() > 1
+
+
+def rank() -> int:
+    return dist.get_rank() if is_distributed() else 0
+
+
+def world_size() -> int:
+    return dist.get_world_size() if is_distributed() else 1
+
+
+def all_reduce_sum(tensor: torch.Tensor) -> torch.Tensor:
+    """Sum ``tensor`` over all ranks in place and return it."""
+    if is_distributed():
+        dist.all_reduce(tensor, op=dist.ReduceOp.SUM)
+    return tensor
+
+
+def broadcast(tensor: torch.Tensor, src: int = 0) -> torch.Tensor:
+    """Overwrite ``tensor`` on every rank with rank ``src``'s copy."""
+    if is_distributed():
+        dist.broadcast(tensor, src=src)
+    return tensor
+
+
+def gather_rows(rows: torch.Tensor) -> torch.Tensor:
+    """Concatenate ``rows`` ``[n_r, d]`` of every rank in rank order; ranks may differ in ``n_r``."""
+    if not is_distributed():
+        return rows
+    size = torch.tensor([rows.shape[0]], device=rows.device, dtype=torch.int64)
+    sizes = [torch.zeros_like(size) for _ in range(world_size())]
+    dist.all_gather(sizes, size)
+    longest = int(max(int(s) for s in sizes))
+    padded = rows.new_zeros((longest,) + tuple(rows.shape[1:]))
+    padded[: rows.shape[0]] = rows
+    parts = [torch.empty_like(padded) for _ in sizes]
+    dist.all_gather(parts, padded)
+    return torch.cat([p[: int(s)] for p, s in zip(parts, sizes)])
+
+
+def gather_for_report(tensor: torch.Tensor) -> torch.Tensor:
+    """Sum a statistic over ranks for reporting; returns a new tensor, never changes state."""
+    out = tensor.detach().clone()
+    return all_reduce_sum(out)

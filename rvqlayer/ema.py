@@ -1,0 +1,54 @@
+"""Moving-average (EMA) codebook update, as pure functions.
+
+VQ-VAE (van den Oord, Vinyals, Kavukcuoglu, NeurIPS 2017, appendix A.1):
+``N <- g N + (1 - g) n``, ``m <- g m + (1 - g) sum z``, ``e = m / N``.
+Smoothing the counts so an unused code never divides by zero is an
+implementation convention (not in the paper); as ``eps -> 0`` it tends to the
+paper's update.
+"""
+
+from __future__ import annotations
+
+import torch
+
+
+def ema_step(
+    counts: torch.Tensor,
+    sums: torch.Tensor,
+    batch_counts: torch.Tensor,
+    batch_sums: torch.Tensor,
+    decay: float,
+) -> None:
+    """Move the running statistics toward this batch, in place.
+
+    Args:
+        counts: ``[k]`` running counts N (float32).
+        sums: ``[k, d]`` running sums m (float32).
+        batch_counts: ``[k]`` vectors assigned to each code in this batch.
+        batch_sums: ``[k, d]`` sum of the vectors assigned to each code.
+        decay: g in ``[0, 1)``.
+    """
+    counts.mul_(decay).add_(batch_counts, alpha=1.0 - decay)
+    sums.mul_(decay).add_(batch_sums, alpha=1.0 - decay)
+
+
+def smoothed_codewords(counts: torch.Tensor, sums: torch.Tensor, eps: float) -> torch.Tensor:
+    """Codewords ``m / N~`` with Laplace-smoothed counts ``[k, d]``.
+
+    ``N~_i = (N_i + eps) / (sum N + k eps) * sum N`` keeps the total count and
+    is never zero, so an unused code gets a finite codeword.
+    """
+    total = counts.sum()
+    k = counts.shape[0]
+    smoothed = (counts + eps) / (total + k * eps) * total
+    return sums / smoothed.clamp_min(torch.finfo(sums.dtype).tiny).unsqueeze(-1)
+
+
+def assignment_stats(
+    x: torch.Tensor, codes: torch.Tensor, weight: torch.Tensor, k: int
+) -> tuple[torch.Tensor, torch.Tensor]:
+    """Per-code count ``[k]`` and sum ``[k, d]`` of rows ``x`` ``[n, d]`` with ``weight`` ``[n]``."""
+    counts = torch.zeros(k, dtype=torch.float32, device=x.device).index_add_(0, codes, weight)
+    sums = torch.zeros(k, x.shape[1], dtype=torch.float32, device=x.device)
+    sums.index_add_(0, codes, x.float() * weight.unsqueeze(1))
+    return counts, sums

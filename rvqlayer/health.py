@@ -1,0 +1,174 @@
+"""Codebook health report, computed from statistics the layer already keeps.
+
+Every figure comes from buffers updated during training (no pass over data).
+Those buffers are all-reduced inside each training step under
+``torch.distributed``, so the report on any rank reflects all ranks.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field
+from typing import TYPE_CHECKING
+
+import torch
+
+if TYPE_CHECKING:
+    from .codebook import Codebook
+    from .quantizer import MultiStageQuantizer
+
+
+def perplexity(counts: torch.Tensor) -> float:
+    """``exp(-sum p log p)`` of the usage distribution ``counts`` ``[K]``.
+
+    Uniform use of K entries gives K, a single used entry gives 1; all-zero
+    counts give 0 (nothing observed).
+
+    >>> perplexity(torch.ones(8))
+    8.0
+    """
+    return math.exp(entropy_nats(counts)) if float(counts.sum()) > 0 else 0.0
+
+
+def entropy_nats(counts: torch.Tensor) -> float:
+    """Shannon entropy (nats) of the usage distribution ``counts`` ``[K]``."""
+    c = counts.detach().double().clamp_min(0)
+    total = c.sum()
+    if float(total) <= 0:
+        return 0.0
+    p = c[c > 0] / total
+    return float(-(p * p.log()).sum())
+
+
+def _db(ratio: float) -> float:
+    return 10.0 * math.log10(ratio) if ratio > 0 else float("-inf")
+
+
+@dataclass
+class StageHealth:
+    """Health of one stage (1-based ``stage``).
+
+    Attributes:
+        usage: share of entries whose moving-average count is above the dead
+            threshold (0..1).
+        dead: number of entries below it.
+        reseeds: codes reseeded so far.
+        perplexity: from the moving-average counts (1..entries).
+        batch_perplexity: from the last training batch's counts.
+        energy_left: moving average of ``||residual after this stage||^2 /
+            ||x||^2`` (lookup space); ``energy_left_db`` is the same in dB.
+        commitment: moving average of the stage's squared error per element.
+        drift: moving average of the mean codeword movement per update.
+        entropy_bits: usage entropy in bits (what an entropy coder would need).
+        bits: fixed-length bits of this stage, ``log2(entries)``.
+    """
+
+    stage: int
+    entries: int
+    usage: float
+    dead: int
+    reseeds: int
+    perplexity: float
+    batch_perplexity: float
+    energy_left: float
+    energy_left_db: float
+    commitment: float
+    drift: float
+    entropy_bits: float
+    bits: float
+    steps: int
+
+
+@dataclass
+class HealthReport:
+    """Per-stage health and totals.
+
+    Attributes:
+        stages: one :class:`StageHealth` per stage.
+        bits_per_vector: fixed-length bits of all stages.
+        entropy_bits: sum of the stages' usage entropies (entropy-coded estimate).
+        energy_left / energy_left_db: after the last stage.
+    """
+
+    stages: list[StageHealth] = field(default_factory=list)
+    bits_per_vector: float = 0.0
+    entropy_bits: float = 0.0
+    energy_left: float = 1.0
+    energy_left_db: float = 0.0
+
+    def as_dict(self) -> dict[str, float]:
+        """Flat ``{"stage<k>/<figure>": value, "<total figure>": value}``; k is 1-based."""
+        out: dict[str, float] = {}
+        for s in self.stages:
+            for key, value in asdict(s).items():
+                if key not in ("stage", "entries"):
+                    out[f"stage{s.stage}/{key}"] = float(value)
+        out.update(
+            bits_per_vector=self.bits_per_vector,
+            entropy_bits=self.entropy_bits,
+            energy_left=self.energy_left,
+            energy_left_db=self.energy_left_db,
+        )
+        return out
+
+    def table(self) -> str:
+        """A fixed-width text table, one row per stage and a total row."""
+        head = f"{'stage':>5} {'usage':>6} {'dead':>5} {'reseeds':>7} {'perplex':>8} {'batch_pp':>8} " \
+               f"{'left_dB':>8} {'commit':>9} {'drift':>9} {'H_bits':>6}"
+        lines = [head]
+        for s in self.stages:
+            lines.append(
+                f"{s.stage:>5} {s.usage:>6.1%} {s.dead:>5} {s.reseeds:>7} {s.perplexity:>8.1f} "
+                f"{s.batch_perplexity:>8.1f} {s.energy_left_db:>8.2f} {s.commitment:>9.3g} "
+                f"{s.drift:>9.3g} {s.entropy_bits:>6.2f}"
+            )
+        lines.append(
+            f"total: {self.bits_per_vector:.1f} bits/vector fixed, {self.entropy_bits:.1f} entropy-coded, "
+            f"energy left {self.energy_left_db:.2f} dB"
+        )
+        return "\n".join(lines)
+
+
+def stage_health(codebook: Codebook, stage: int, energy_left: float, commitment: float, steps: int,
+                 dead_below: float | None = None) -> StageHealth:
+    """Health of one :class:`~rvqlayer.Codebook` (the quantizer supplies the chain figures)."""
+    dead = int(codebook.dead_codes(dead_below).sum())
+    return StageHealth(
+        stage=stage,
+        entries=codebook.entries,
+        usage=1.0 - dead / codebook.entries,
+        dead=dead,
+        reseeds=int(codebook.reseeds),
+        perplexity=perplexity(codebook.ema_count),
+        batch_perplexity=perplexity(codebook.last_count),
+        energy_left=energy_left,
+        energy_left_db=_db(energy_left),
+        commitment=commitment,
+        drift=float(codebook.ema_drift),
+        entropy_bits=entropy_nats(codebook.ema_count) / math.log(2.0),
+        bits=math.log2(codebook.entries),
+        steps=steps,
+    )
+
+
+def quantizer_health(quantizer: MultiStageQuantizer, dead_below: float | None = None) -> HealthReport:
+    """Build the :class:`HealthReport` of ``quantizer``."""
+    stages = [
+        stage_health(
+            cb,
+            i + 1,
+            float(quantizer.energy_left[i]),
+            float(quantizer.stage_error[i]),
+            int(quantizer.stats_steps[i]),
+            dead_below,
+        )
+        for i, cb in enumerate(quantizer.codebooks)
+    ]
+    left = stages[-1].energy_left if stages else 1.0
+    return HealthReport(
+        stages=stages,
+        bits_per_vector=sum(s.bits for s in stages),
+        entropy_bits=sum(s.entropy_bits for s in stages),
+        energy_left=left,
+        energy_left_db=_db(left),
+    )

@@ -102,6 +102,17 @@ class Codebook(nn.Module):
         self.register_buffer("reseeds", torch.zeros((), dtype=torch.int64))
         self._pending_reseed: float | None = None
 
+    def _apply(self, fn, recurse=True):  # type: ignore[no-untyped-def]
+        # Statistics (and EMA codewords, derived from them) stay float32 whatever .half() does.
+        super()._apply(fn, recurse)
+        keep = ["ema_count", "last_count", "ema_drift"]
+        keep += ["codewords", "ema_sum"] if self.update == "ema" else ["previous_codewords"]
+        for name in keep:
+            t = self._buffers[name]
+            if t is not None and t.is_floating_point() and t.dtype != torch.float32:
+                self._buffers[name] = t.float()
+        return self
+
     def extra_repr(self) -> str:
         return (
             f"entries={self.entries}, code_dim={self.code_dim}, update={self.update!r}, "

@@ -137,6 +137,15 @@ class MultiStageQuantizer(nn.Module):
         self.register_buffer("stage_error", torch.zeros(stages))
         self.register_buffer("stats_steps", torch.zeros(stages, dtype=torch.int64))
 
+    def _apply(self, fn, recurse=True):  # type: ignore[no-untyped-def]
+        # Health statistics stay float32 whatever .half() does.
+        super()._apply(fn, recurse)
+        for name in ("energy_left", "stage_error"):
+            t = self._buffers[name]
+            if t is not None and t.dtype != torch.float32:
+                self._buffers[name] = t.float()
+        return self
+
     def extra_repr(self) -> str:
         return (
             f"dim={self.dim}, stages={self.stages}, entries={self.entries}, code_dim={self.code_dim}, "

@@ -13,16 +13,18 @@ from typing import TYPE_CHECKING
 
 import torch
 
+from ._checks import check_float
+
 if TYPE_CHECKING:
     from .codebook import Codebook
     from .quantizer import MultiStageQuantizer
 
 
 def perplexity(counts: torch.Tensor) -> float:
-    """``exp(-sum p log p)`` of the usage distribution ``counts`` ``[K]``.
+    """``exp(H)`` of the usage distribution ``counts`` ``[K]``, H the entropy in nats.
 
-    Uniform use of K entries gives K, a single used entry gives 1; all-zero
-    counts give 0 (nothing observed).
+    Between 1 (a single used entry) and K (uniform use of all K entries);
+    all-zero counts give 0 (nothing observed).
 
     >>> round(perplexity(torch.ones(8)), 6)
     8.0
@@ -31,12 +33,20 @@ def perplexity(counts: torch.Tensor) -> float:
 
 
 def entropy_nats(counts: torch.Tensor) -> float:
-    """Shannon entropy (nats) of the usage distribution ``counts`` ``[K]``."""
+    """Shannon entropy ``-sum p log p`` (nats) of the usage distribution ``counts`` ``[K]``.
+
+    ``p = counts / counts.sum()``; entries with ``p = 0`` add nothing
+    (``0 log 0 = 0``). Negative counts are treated as 0.
+
+    >>> round(entropy_nats(torch.tensor([1.0, 1.0, 0.0])), 6)  # log 2
+    0.693147
+    """
     c = counts.detach().double().clamp_min(0)
     total = c.sum()
     if float(total) <= 0:
         return 0.0
-    p = c[c > 0] / total
+    p = c / total
+    p = p[p > 0]  # after dividing: a tiny count can underflow to 0
     return float(-(p * p.log()).sum())
 
 
@@ -61,6 +71,8 @@ class StageHealth:
         drift: moving average of the mean codeword movement per update.
         entropy_bits: usage entropy in bits (what an entropy coder would need).
         bits: fixed-length bits of this stage, ``log2(entries)``.
+        steps: training steps that fed the stage's energy and commitment
+            averages (0: nothing measured yet, ``energy_left`` is then 1).
     """
 
     stage: int
@@ -113,8 +125,10 @@ class HealthReport:
 
     def table(self) -> str:
         """A fixed-width text table, one row per stage and a total row."""
-        head = f"{'stage':>5} {'usage':>6} {'dead':>5} {'reseeds':>7} {'perplex':>8} {'batch_pp':>8} " \
-               f"{'left_dB':>8} {'commit':>9} {'drift':>9} {'H_bits':>6}"
+        head = (
+            f"{'stage':>5} {'usage':>6} {'dead':>5} {'reseeds':>7} {'perplex':>8} {'batch_pp':>8} "
+            f"{'left_dB':>8} {'commit':>9} {'drift':>9} {'H_bits':>6}"
+        )
         lines = [head]
         for s in self.stages:
             lines.append(
@@ -129,8 +143,9 @@ class HealthReport:
         return "\n".join(lines)
 
 
-def stage_health(codebook: Codebook, stage: int, energy_left: float, commitment: float, steps: int,
-                 dead_below: float | None = None) -> StageHealth:
+def stage_health(
+    codebook: Codebook, stage: int, energy_left: float, commitment: float, steps: int, dead_below: float | None = None
+) -> StageHealth:
     """Health of one :class:`~rvqlayer.Codebook` (the quantizer supplies the chain figures)."""
     dead = int(codebook.dead_codes(dead_below).sum())
     return StageHealth(
@@ -152,7 +167,22 @@ def stage_health(codebook: Codebook, stage: int, energy_left: float, commitment:
 
 
 def quantizer_health(quantizer: MultiStageQuantizer, dead_below: float | None = None) -> HealthReport:
-    """Build the :class:`HealthReport` of ``quantizer``."""
+    """Build the :class:`HealthReport` of ``quantizer`` from its buffers; changes nothing.
+
+    ``dead_below`` is the dead-code threshold as a share of the uniform usage
+    rate, in ``(0, 1]``; ``None`` takes each codebook's ``reseed_below`` (0.03
+    when reseeding is off).
+
+    >>> from rvqlayer import MultiStageQuantizer
+    >>> torch.manual_seed(0) and None
+    >>> q = MultiStageQuantizer(4, stages=2, entries=8)
+    >>> _ = q(torch.randn(256, 4))
+    >>> report = quantizer_health(q)
+    >>> len(report.stages), report.bits_per_vector, report.stages[0].usage
+    (2, 6.0, 1.0)
+    """
+    if dead_below is not None:
+        check_float("dead_below", dead_below, 0.0, 1.0, low_open=True)
     stages = [
         stage_health(
             cb,

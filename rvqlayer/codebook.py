@@ -68,7 +68,7 @@ class Codebook(nn.Module):
         init: Init = "kmeans",
         init_iters: int = 10,
         init_restarts: int = 3,
-        init_points: int = 16384,
+        init_points: int = 8192,
         reseed_below: float = 0.03,
         metric: Metric = "l2",
         chunk: int = 4096,

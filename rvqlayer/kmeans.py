@@ -33,9 +33,10 @@ class KMeansResult:
     mse: float
 
 
-def _sq_dist_to(x: torch.Tensor, centres: torch.Tensor) -> torch.Tensor:
-    """Squared distances ``[n, m]`` from rows of ``x`` to ``centres``."""
-    return torch.cdist(x, centres).pow_(2)
+def _sq_dist_to(x: torch.Tensor, x_sq: torch.Tensor, centres: torch.Tensor) -> torch.Tensor:
+    """Squared distances ``[n, m]`` from rows of ``x`` (squared norms ``x_sq`` ``[n]``) to ``centres``."""
+    d = torch.addmm((centres * centres).sum(-1), x, centres.T, alpha=-2.0)
+    return d.add_(x_sq.unsqueeze(1)).clamp_min_(0.0)
 
 
 def seed_plus_plus(x: torch.Tensor, k: int, *, candidates: int | None = None) -> torch.Tensor:
@@ -52,7 +53,8 @@ def seed_plus_plus(x: torch.Tensor, k: int, *, candidates: int | None = None) ->
     centres = torch.empty(k, x.shape[1], dtype=x.dtype, device=x.device)
     first = int(torch.randint(n, (1,), device=x.device))
     centres[0] = x[first]
-    closest = _sq_dist_to(x, centres[:1]).squeeze(1)
+    x_sq = (x * x).sum(-1)
+    closest = _sq_dist_to(x, x_sq, centres[:1]).squeeze(1)
     for i in range(1, k):
         total = closest.sum()
         if float(total) <= 0.0:  # every point already sits on a centre
@@ -60,7 +62,7 @@ def seed_plus_plus(x: torch.Tensor, k: int, *, candidates: int | None = None) ->
             centres[i:] = x[picks]
             break
         cand = torch.multinomial(closest, tries, replacement=True)
-        d_cand = _sq_dist_to(x, x[cand])  # [n, tries]
+        d_cand = _sq_dist_to(x, x_sq, x[cand])  # [n, tries]
         new_closest = torch.minimum(closest.unsqueeze(1), d_cand)
         best = int(new_closest.sum(0).argmin())
         centres[i] = x[cand[best]]

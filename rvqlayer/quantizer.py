@@ -88,7 +88,7 @@ class MultiStageQuantizer(nn.Module):
         init: Init = "kmeans",
         init_iters: int = 10,
         init_restarts: int = 3,
-        init_points: int = 16384,
+        init_points: int = 8192,
         reseed_below: float = 0.03,
         stage_dropout: float = 0.0,
         metric: Metric = "l2",

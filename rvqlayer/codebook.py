@@ -100,12 +100,12 @@ class Codebook(nn.Module):
         self.register_buffer("initialised", torch.tensor(self.init == "random"))
         self.register_buffer("step", torch.zeros((), dtype=torch.int64))
         self.register_buffer("reseeds", torch.zeros((), dtype=torch.int64))
-        self._pending_reseed: float | None = None
+        self.register_buffer("pending_reseed", torch.zeros(()))  # share asked for by request_reseed; 0 = none
 
     def _apply(self, fn, recurse=True):  # type: ignore[no-untyped-def]
         # Statistics (and EMA codewords, derived from them) stay float32 whatever .half() does.
         super()._apply(fn, recurse)
-        keep = ["ema_count", "last_count", "ema_drift"]
+        keep = ["ema_count", "last_count", "ema_drift", "pending_reseed"]
         keep += ["codewords", "ema_sum"] if self.update == "ema" else ["previous_codewords"]
         for name in keep:
             t = self._buffers[name]
@@ -162,7 +162,7 @@ class Codebook(nn.Module):
             used, self.entries, iters=self.init_iters, restarts=self.init_restarts, metric=self.metric, chunk=self.chunk
         )
         centroids = _dist.broadcast(fit.centroids.contiguous())
-        counts = _dist.broadcast(fit.counts * (rows.shape[0] / used.shape[0]) / _dist.world_size())
+        counts = _dist.broadcast(fit.counts * (rows.shape[0] / used.shape[0]))
         counts = counts.to(self.ema_count)
         self.codewords.data.copy_(centroids)
         self.ema_count.copy_(counts)
@@ -191,10 +191,8 @@ class Codebook(nn.Module):
         if int(self.step) > 0:
             self.ema_drift.mul_(self.ema_decay).add_(moved, alpha=1.0 - self.ema_decay)
         self.step.add_(1)
-        below = self.reseed_below
-        if self._pending_reseed is not None:
-            below = max(below, self._pending_reseed)
-            self._pending_reseed = None
+        below = max(self.reseed_below, float(self.pending_reseed))
+        self.pending_reseed.zero_()
         if below > 0:
             self._reseed(x[weight], below)
         if self.update == "gradient":
@@ -210,7 +208,7 @@ class Codebook(nn.Module):
 
     def request_reseed(self, below: float) -> None:
         """Reseed, at the next training step, every code under ``below`` times the uniform rate."""
-        self._pending_reseed = check_float("below", below, 0.0, 1.0, low_open=True)
+        self.pending_reseed.fill_(check_float("below", below, 0.0, 1.0, low_open=True))
 
     def _reseed(self, rows: torch.Tensor, below: float) -> None:
         dead = self.dead_codes(below)

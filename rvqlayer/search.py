@@ -80,7 +80,8 @@ def beam_encode(
         x: ``[n, d]`` vectors.
         codebooks: one ``[k_s, d]`` tensor per stage.
         beam: paths kept per vector (>= 1).
-        chunk: vectors per block; memory is about ``chunk * beam * k`` floats.
+        chunk: candidate paths per block (``chunk // beam`` vectors); a block holds
+            ``chunk * k`` candidate errors, and the peak is a few times that.
 
     Returns:
         int64 ``[n, len(codebooks)]``.

@@ -37,20 +37,6 @@ from rvqlayer import Codebook, MultiStageQuantizer, fit_kmeans
 Sampler = Callable[[int, torch.Generator | None], torch.Tensor]
 
 
-@pytest.fixture(autouse=True, scope="module")
-def _one_thread():
-    """Run these loops of small steps on one thread, then restore the setting.
-
-    On a 2-core machine that is busy with anything else, a second intra-op
-    thread makes each small matmul wait for a time slice (measured: 1 ms per
-    training step on one thread, 17 ms on two). Results do not depend on it.
-    """
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
-
-
 def _gaussian(dim: int) -> Sampler:
     return lambda n, gen: torch.randn(n, dim, generator=gen)
 

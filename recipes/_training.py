@@ -1,0 +1,262 @@
+"""Lightning pieces shared by the recipes: the module wrapper, step-keyed batches,
+atomic checkpoints and resuming.
+
+Every recipe draws the batch of training step ``s`` from ``(seed, s)`` alone,
+and the checkpoint keeps torch's random state, so a run resumed from its last
+checkpoint sees the same batches and the same stage-dropout draws as one that
+was never interrupted.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import tempfile
+import warnings
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+import pytorch_lightning as pl
+import torch
+from pytorch_lightning.callbacks import Callback, TQDMProgressBar
+from pytorch_lightning.loggers import TensorBoardLogger
+from pytorch_lightning.plugins.io import TorchCheckpointIO
+from torch import nn
+
+from rvqlayer import MultiStageQuantizer
+from rvqlayer._checks import fail
+
+from ._outputs import file_mode
+
+CHECKPOINT = Path("checkpoints") / "last.ckpt"
+
+
+# ------------------------------------------------------------- checkpoints
+class AtomicCheckpointIO(TorchCheckpointIO):
+    """Checkpoint files written under a temporary name in the same folder, then renamed.
+
+    Lightning's own writer stages the bytes in the system temp folder and
+    moves them, which is a copy (not atomic) when that folder lies on another
+    file system. Loading always uses ``torch.load(weights_only=True)``.
+    """
+
+    def save_checkpoint(self, checkpoint: dict[str, Any], path: Any, storage_options: Any = None) -> None:
+        target = Path(path)
+        target.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+        try:
+            with os.fdopen(fd, "wb") as f:
+                torch.save(checkpoint, f)
+                f.flush()
+                os.fsync(f.fileno())
+            os.chmod(tmp, file_mode())
+            os.replace(tmp, target)
+        finally:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+
+    def load_checkpoint(self, path: Any, map_location: Any = None, weights_only: bool | None = None) -> dict[str, Any]:
+        return read_checkpoint(Path(path))
+
+
+def read_checkpoint(path: Path) -> dict[str, Any]:
+    """Load a recipe checkpoint with ``weights_only=True``; a wrong file gives a clear error."""
+    if not path.is_file():
+        raise fail("--resume", "a run folder with a checkpoint", f"no checkpoint at {str(path)!r}")
+    try:
+        state = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as exc:  # truncated zip, wrong format, disallowed object
+        raise fail("--resume", "a readable checkpoint", f"{str(path)!r} ({type(exc).__name__})") from None
+    if not isinstance(state, dict) or not {"state_dict", "global_step", "recipe"} <= set(state):
+        raise fail("--resume", "a checkpoint written by a recipe", f"{str(path)!r} without its recipe fields")
+    return state
+
+
+class SaveLast(Callback):
+    """Write ``checkpoints/last.ckpt`` every ``every`` steps and after the last step."""
+
+    def __init__(self, path: Path, every: int) -> None:
+        self.path = Path(path)
+        self.every = max(1, every)
+
+    def on_train_batch_end(self, trainer: pl.Trainer, pl_module: pl.LightningModule, *args: Any) -> None:
+        step = trainer.global_step
+        if step % self.every == 0 or step >= trainer.max_steps:
+            trainer.save_checkpoint(self.path, weights_only=False)
+
+
+# ----------------------------------------------------------------- batches
+class StepBatches:
+    """Endless batches ``make(step)`` for ``step = start, start + 1, ...``.
+
+    The batch depends on the step number only, so resuming at step ``start``
+    continues the exact stream of an uninterrupted run.
+    """
+
+    def __init__(self, make: Callable[[int], Any], start: int = 0) -> None:
+        self.make = make
+        self.start = start
+
+    def __iter__(self) -> Iterator[Any]:
+        step = self.start
+        while True:
+            yield self.make(step)
+            step += 1
+
+
+class FixedBatches:
+    """The same few batches on every pass (validation).
+
+    A plain iterable rather than a ``DataLoader``: creating a DataLoader
+    iterator draws from torch's global random generator, which would shift
+    the stage-dropout draws of the following training steps.
+    """
+
+    def __init__(self, batches: list[Any]) -> None:
+        self.batches = list(batches)
+
+    def __iter__(self) -> Iterator[Any]:
+        return iter(self.batches)
+
+    def __len__(self) -> int:
+        return len(self.batches)
+
+
+# ------------------------------------------------------------------ module
+class RecipeModule(pl.LightningModule):
+    """Lightning wrapper shared by the recipes.
+
+    Subclasses set ``self.quantizer`` and implement :meth:`losses`, which
+    returns a dict of scalar tensors including ``"loss"`` (what is minimised).
+    ``config`` (plain values) is stored in every checkpoint under ``"recipe"``.
+    """
+
+    quantizer: MultiStageQuantizer
+
+    def __init__(self, config: dict[str, Any], lr: float = 1e-3) -> None:
+        super().__init__()
+        self.config = dict(config)
+        self.lr = lr
+
+    def losses(self, batch: Any) -> dict[str, torch.Tensor]:
+        raise NotImplementedError
+
+    def training_step(self, batch: Any, batch_idx: int) -> torch.Tensor | None:
+        parts = self.losses(batch)
+        self.log_dict({f"train/{k}": v.detach() for k, v in parts.items()}, prog_bar=False)
+        self.log("loss", parts["loss"].detach(), prog_bar=True, logger=False)
+        loss = parts["loss"]
+        return loss if loss.requires_grad else None
+
+    def validation_step(self, batch: Any, batch_idx: int) -> None:
+        parts = self.losses(batch)
+        self.log_dict({f"val/{k}": v for k, v in parts.items()}, prog_bar=False)
+
+    def configure_optimizers(self) -> Any:
+        params = [p for p in self.parameters() if p.requires_grad]
+        return torch.optim.Adam(params, lr=self.lr) if params else None
+
+    def on_save_checkpoint(self, checkpoint: dict[str, Any]) -> None:
+        checkpoint["recipe"] = dict(self.config)
+        checkpoint["torch_rng"] = torch.get_rng_state()
+
+    def on_load_checkpoint(self, checkpoint: dict[str, Any]) -> None:
+        rng = checkpoint.get("torch_rng")
+        if isinstance(rng, torch.Tensor):
+            torch.set_rng_state(rng)
+
+
+def val_interval(config: dict[str, Any]) -> int:
+    """Steps between validation passes: 2 per run with ``--quick``, else 5."""
+    return max(1, int(config["steps"]) // (2 if config["quick"] else 5))
+
+
+def monitor_callbacks() -> list[Callback]:
+    """The codebook health monitor, when :mod:`rvqlayer.callbacks` is available."""
+    try:
+        from rvqlayer.callbacks import CodebookMonitor
+    except ImportError:
+        return []
+    return [CodebookMonitor()]
+
+
+def _quiet_lightning() -> None:
+    """Keep Lightning's start-up chatter and known harmless warnings out of the recipes' output."""
+    for name in (
+        "pytorch_lightning.utilities.rank_zero",
+        "lightning_fabric.utilities.rank_zero",
+        "pytorch_lightning.accelerators.cuda",
+    ):
+        logging.getLogger(name).setLevel(logging.WARNING)
+    warnings.filterwarnings("ignore", message=".*does not have many workers.*")
+    warnings.filterwarnings("ignore", message=".*isinstance\\(treespec, LeafSpec\\).*")
+    warnings.filterwarnings("ignore", message=".*resuming from a checkpoint that ended before the epoch ended.*")
+    warnings.filterwarnings("ignore", message=".*`training_step` returned `None`.*")
+    warnings.filterwarnings("ignore", message=".*configure_optimizers` returned `None`.*")
+    warnings.filterwarnings("ignore", message=".*defined a `validation_step` but have no `val_dataloader`.*")
+
+
+def train(
+    module: RecipeModule,
+    make_batch: Callable[[int], Any],
+    *,
+    out: Path,
+    steps: int,
+    resume: dict[str, Any] | None,
+    val_batches: list[Any] | None = None,
+    val_every: int | None = None,
+    save_every: int = 100,
+    gradient_clip: float | None = None,
+) -> pl.Trainer:
+    """Fit ``module`` for ``steps`` optimizer steps (in total, counting a resumed run's).
+
+    ``resume`` is the checkpoint read by :func:`read_checkpoint` (or None).
+    Logs go to ``out/logs`` (TensorBoard), the checkpoint to ``out/checkpoints/last.ckpt``.
+    """
+    _quiet_lightning()
+    for stale in (out / CHECKPOINT).parent.glob(f".{CHECKPOINT.name}.*.tmp"):
+        stale.unlink()  # left by a run killed while it wrote a checkpoint
+    start = int(resume["global_step"]) if resume is not None else 0
+    logger = TensorBoardLogger(str(out), name="logs", version="", default_hp_metric=False)
+    callbacks: list[Callback] = [SaveLast(out / CHECKPOINT, save_every), TQDMProgressBar(refresh_rate=10)]
+    callbacks += monitor_callbacks()
+    log_every = max(1, min(50, steps // 20))
+    val_kwargs: dict[str, Any] = {"limit_val_batches": 0}
+    if val_batches:
+        interval = val_every or max(1, steps // 4)
+        val_kwargs = {"val_check_interval": interval, "check_val_every_n_epoch": None}
+    trainer = pl.Trainer(
+        accelerator="cpu",
+        devices=1,
+        max_steps=steps,
+        logger=logger,
+        callbacks=callbacks,
+        plugins=[AtomicCheckpointIO()],
+        enable_checkpointing=False,
+        enable_model_summary=False,
+        num_sanity_val_steps=0,
+        log_every_n_steps=log_every,
+        gradient_clip_val=gradient_clip,
+        **val_kwargs,
+    )
+    ckpt = str(out / CHECKPOINT) if resume is not None else None
+    if resume is not None and start >= steps:
+        module.load_state_dict(resume["state_dict"])
+        module.on_load_checkpoint(resume)
+        print(f"checkpoint is at step {start} of {steps}: nothing left to train", flush=True)
+        return trainer
+    if resume is not None:
+        print(f"resuming from the checkpoint at step {start} (of {steps})", flush=True)
+    trainer.fit(
+        module,
+        train_dataloaders=StepBatches(make_batch, start),
+        val_dataloaders=FixedBatches(val_batches) if val_batches else None,
+        ckpt_path=ckpt,
+        weights_only=True,
+    )
+    return trainer
+
+
+def count_parameters(model: nn.Module) -> int:
+    return sum(p.numel() for p in model.parameters() if p.requires_grad)

@@ -1,0 +1,203 @@
+"""``embeddings``: fit a quantizer directly to pre-computed feature vectors (frozen encoder).
+
+The features come from ``--data`` (``.npy`` read with
+``numpy.load(allow_pickle=False)``, or a tensor saved with ``torch.save`` and
+read with ``torch.load(weights_only=True)``), shaped ``[N, dim]`` (one vector
+per item) or ``[N, T, dim]`` (a sequence of T vectors per item), in a float
+dtype, with no NaN or Inf. Without ``--data`` the recipe fits a synthetic
+Gaussian mixture (invented data, for demos only).
+
+Training is k-means initialisation on the first batch and then
+moving-average (EMA) passes over the data in a seeded order; with
+``--code-dim`` smaller than dim the two projections are also learned by
+gradient on the reconstruction error. The codes of every input vector are
+written back as ``codes.npy`` (int64, the input's shape with ``stages`` in
+place of ``dim``) and the quantizer as ``codebooks.safetensors``
+(:func:`rvqlayer.export.load_codebooks` reads it; ``decode`` of the codes
+gives the reconstructions).
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+
+from rvqlayer import MultiStageQuantizer
+from rvqlayer._checks import fail
+from rvqlayer.export import save_codebooks
+
+from . import _defaults, _outputs, _plots, _training
+from ._outputs import Measure
+
+NAME = "embeddings"
+DEFAULTS = _defaults.DEFAULTS[NAME]
+QUICK = _defaults.QUICK[NAME]
+DEMO = {False: (16384, 16, 12), True: (4096, 16, 12)}  # (vectors, dim, mixture components)
+MEASURES = [Measure("SNR", "dB", True), Measure("energy left", "%", False)]
+_FLOAT_DTYPES = (np.float16, np.float32, np.float64)
+
+
+def demo_features(seed: int, n: int, dim: int, components: int) -> np.ndarray:
+    """A Gaussian mixture ``[n, dim]`` float32: random means, random per-component scales and axes."""
+    rng = np.random.default_rng([seed, 11])
+    means = rng.normal(0.0, 3.0, size=(components, dim))
+    mixing = rng.normal(0.0, 1.0, size=(components, dim, dim)) / math.sqrt(dim)
+    scales = rng.uniform(0.3, 1.5, size=(components, 1, 1))
+    which = rng.integers(0, components, size=n)
+    noise = rng.normal(size=(n, dim))
+    x = means[which] + np.einsum("nd,nde->ne", noise, mixing[which] * scales[which])
+    return x.astype(np.float32)
+
+
+def _load(path: Path) -> np.ndarray:
+    """Read ``path`` without running code from it; every failure is a clear error."""
+    shown = repr(str(path))
+    if not path.exists():
+        raise fail("--data", "an existing .npy or .pt file", f"{shown} (no such file)")
+    if not path.is_file():
+        raise fail("--data", "a .npy or .pt file", f"{shown}, which is not a regular file")
+    suffix = path.suffix.lower()
+    if suffix not in (".npy", ".pt", ".pth"):
+        raise fail("--data", "a file ending in .npy or .pt", shown)
+    try:
+        with open(path, "rb") as f:
+            f.read(1)
+    except OSError as exc:
+        raise fail("--data", "a readable file", f"{shown} ({exc.strerror or type(exc).__name__})") from None
+    if suffix == ".npy":
+        try:
+            array = np.load(path, allow_pickle=False)
+        except Exception as exc:  # bad header, short file, object array (needs pickle), ...
+            raise fail("--data", "a valid .npy array file", f"{shown} ({_reason(exc)})") from None
+        if not isinstance(array, np.ndarray):
+            raise fail("--data", "a single array (.npy)", f"{shown} holding {type(array).__name__}")
+        if array.dtype not in _FLOAT_DTYPES:
+            raise fail("--data", "float16, float32 or float64 values", f"dtype {array.dtype} in {shown}")
+        return np.asarray(array, dtype=np.float32)
+    try:
+        obj = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as exc:  # not a torch file, truncated, or holds objects weights_only refuses
+        raise fail("--data", "a tensor saved with torch.save (.pt)", f"{shown} ({_reason(exc)})") from None
+    if not isinstance(obj, torch.Tensor):
+        raise fail("--data", "a single tensor (.pt)", f"{shown} holding {type(obj).__name__}")
+    if not obj.is_floating_point():
+        raise fail("--data", "a floating-point tensor", f"dtype {obj.dtype} in {shown}")
+    return obj.detach().float().numpy()
+
+
+def _reason(exc: Exception) -> str:
+    text = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+    return f"{type(exc).__name__}: {text[:120]}" if text else type(exc).__name__
+
+
+def check_features(x: np.ndarray, name: str) -> np.ndarray:
+    """Fail unless ``x`` is ``[N, dim]`` or ``[N, T, dim]`` with finite values; returns it."""
+    if x.ndim not in (2, 3) or 0 in x.shape:
+        raise fail(
+            "--data", "an array of shape [N, dim] or [N, T, dim] with no empty axis", f"shape {x.shape} in {name}"
+        )
+    finite = np.isfinite(x)
+    if not finite.all():
+        bad = int(x.size - finite.sum())
+        raise fail("--data", "finite values (no NaN or Inf)", f"{bad} non-finite values in {name}")
+    return x
+
+
+def prepare(config: dict[str, Any]) -> dict[str, Any]:
+    """Load and check the features (or build the demo mixture); writes nothing."""
+    if config["data"]:
+        path = Path(config["data"])
+        x = check_features(_load(path), repr(str(path)))
+        source = str(path.resolve())
+        config["data"] = source
+    else:
+        n, dim, comps = DEMO[bool(config["quick"])]
+        x = demo_features(config["seed"], n, dim, comps)
+        source = f"synthetic Gaussian mixture ({n} x {dim}, {comps} components, seed {config['seed']})"
+    config["data_shape"] = list(x.shape)
+    return {"features": x, "source": source}
+
+
+def max_code_dim(config: dict[str, Any], data: dict[str, Any]) -> int:
+    return int(data["features"].shape[-1])
+
+
+class EmbeddingModule(_training.RecipeModule):
+    def __init__(self, config: dict[str, Any], dim: int) -> None:
+        super().__init__(config, lr=1e-3)
+        self.quantizer = MultiStageQuantizer(
+            dim,
+            stages=config["stages"],
+            entries=config["entries"],
+            code_dim=config["code_dim"],
+            stage_dropout=0.5,
+            init_restarts=1,
+        )
+
+    def losses(self, batch: torch.Tensor) -> dict[str, torch.Tensor]:
+        out = self.quantizer(batch)
+        mse = F.mse_loss(out.quantized, batch)
+        # Without learned projections nothing takes a gradient: the EMA update inside forward is the learning.
+        loss = mse + out.loss if self.quantizer.code_dim < self.quantizer.dim else (mse + out.loss).detach()
+        return {"loss": loss, "mse": mse.detach(), "quantizer": out.loss.detach()}
+
+
+def _batch_maker(x: np.ndarray, seed: int, batch_size: int):
+    per_pass = math.ceil(len(x) / batch_size)
+
+    def make(step: int) -> torch.Tensor:
+        order = np.random.default_rng([seed, 3, step // per_pass]).permutation(len(x))
+        i = step % per_pass
+        return torch.from_numpy(x[order[i * batch_size : (i + 1) * batch_size]])
+
+    return make, per_pass
+
+
+def run(
+    config: dict[str, Any], data: dict[str, Any], out: Path, resume: dict[str, Any] | None
+) -> tuple[_outputs.RateTable, dict[str, Path]]:
+    x = data["features"]
+    dim = x.shape[-1]
+    torch.manual_seed(config["seed"])
+    module = EmbeddingModule(config, dim)
+    make, per_pass = _batch_maker(x, config["seed"], config["batch_size"])
+    vectors = int(np.prod(x.shape[:-1]))
+    print(
+        f"embeddings: {data['source']}: {vectors:,} vectors of {dim}; {config['steps']} steps of "
+        f"{config['batch_size']} items = {config['steps'] / per_pass:.1f} moving-average passes",
+        flush=True,
+    )
+    _training.train(module, make, out=out, steps=config["steps"], resume=resume, save_every=max(1, per_pass * 5))
+
+    q = module.quantizer.eval()
+    xt = torch.from_numpy(x)
+    codes = q.encode(xt)
+    centred = float(np.sum((x - x.reshape(-1, dim).mean(0)) ** 2, dtype=np.float64))
+    energy = float(np.sum(x.astype(np.float64) ** 2))
+
+    def measure(k: int) -> dict[str, float]:
+        err = float(torch.sum((q.decode(codes[..., :k]).double() - xt.double()) ** 2))
+        return {"SNR": 10 * math.log10(centred / max(err, 1e-300)), "energy left": 100.0 * err / max(energy, 1e-300)}
+
+    per_item = 1 if x.ndim == 2 else x.shape[1]
+    if config["frame_rate"]:
+        unit, rate = "kbps", (lambda bits: config["frame_rate"] * bits / 1000.0)
+    else:
+        unit, rate = "bits/item", (lambda bits: bits * per_item)
+    table = _outputs.rate_table(q, measure, MEASURES, unit, rate)
+    files = _outputs.write_table(out, table, {"recipe": NAME, "data": data["source"], "shape": list(x.shape)})
+    with _outputs.atomic_path(out / "codes.npy") as tmp:
+        with open(tmp, "wb") as f:
+            np.save(f, codes.numpy())
+    files["codes"] = out / "codes.npy"
+    files["codebooks"] = save_codebooks(q, out / "codebooks.safetensors")
+    files["quality vs bits"] = _plots.rate_quality_png(out / "quality_vs_bits.png", table, "embeddings")
+    files.update(_outputs.write_health(out, q))
+    files["checkpoint"] = out / _training.CHECKPOINT
+    files["logs (TensorBoard)"] = out / "logs"
+    return table, files

@@ -7,6 +7,7 @@ in :mod:`rvqlayer.callbacks` and is imported on demand.
 from ._checks import RvqlayerError
 from .bitrate import bitrate, bits_per_vector
 from .codebook import Codebook
+from .export import load_codebooks, save_codebooks
 from .health import HealthReport, StageHealth
 from .kmeans import KMeansResult, fit_kmeans
 from .quantizer import MultiStageQuantizer, QuantizerOutput
@@ -24,7 +25,9 @@ __all__ = [
     "bitrate",
     "bits_per_vector",
     "fit_kmeans",
+    "load_codebooks",
     "nearest_code",
+    "save_codebooks",
 ]
 
 __version__ = "0.1.0"

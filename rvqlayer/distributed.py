@@ -1,8 +1,8 @@
 """Collective operations that are no-ops outside ``torch.distributed``.
 
-Two kinds of traffic are kept apart: :func:`all_reduce_sum`, :func:`broadcast`
-and :func:`gather_rows` keep codebooks identical and run inside the training
-step; :func:`gather_for_report` is for health reporting only.
+:func:`all_reduce_sum`, :func:`broadcast` and :func:`gather_rows` keep
+codebooks identical and run inside the training step. Health reporting needs
+no traffic of its own: it reads statistics already all-reduced in the step.
 """
 
 from __future__ import annotations
@@ -14,10 +14,6 @@ import torch.distributed as dist
 def is_distributed() -> bool:
     """True when a process group is initialised with more than one rank."""
     return dist.is_available() and dist.is_initialized() and dist.get_world_size() > 1
-
-
-def rank() -> int:
-    return dist.get_rank() if is_distributed() else 0
 
 
 def world_size() -> int:
@@ -52,8 +48,3 @@ def gather_rows(rows: torch.Tensor) -> torch.Tensor:
     dist.all_gather(parts, padded)
     return torch.cat([p[: int(s)] for p, s in zip(parts, sizes)])
 
-
-def gather_for_report(tensor: torch.Tensor) -> torch.Tensor:
-    """Sum a statistic over ranks for reporting; returns a new tensor, never changes state."""
-    out = tensor.detach().clone()
-    return all_reduce_sum(out)

@@ -87,10 +87,10 @@ def lloyd(
     x = x.float()
     c = centroids.float().clone()
     k = c.shape[0]
-    for _ in range(iters + 1):
+    for it in range(iters + 1):
         codes, dist = nearest_code(x, c, metric=metric, chunk=chunk)
         counts = torch.bincount(codes, minlength=k).float()
-        if _ == iters:
+        if it == iters:
             break
         sums = torch.zeros_like(c).index_add_(0, codes, x)
         filled = counts > 0

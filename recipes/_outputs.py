@@ -7,14 +7,14 @@ import json
 import math
 import os
 import tempfile
-from collections.abc import Iterator, Sequence
-from contextlib import contextmanager
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from rvqlayer import MultiStageQuantizer
 from rvqlayer._checks import fail
+from rvqlayer.files import atomic_path
 
 
 # ------------------------------------------------------------ output folder
@@ -68,32 +68,6 @@ def make_output_dir(path: Path) -> Path:
                 pass
         raise fail("--out", "a writable folder", f"{str(path)!r} ({exc.strerror or type(exc).__name__})") from None
     return path
-
-
-def file_mode() -> int:
-    """Permission bits for a new file under the current umask (``mkstemp`` alone gives 0600)."""
-    mask = os.umask(0)
-    os.umask(mask)
-    return 0o666 & ~mask
-
-
-@contextmanager
-def atomic_path(target: Path) -> Iterator[Path]:
-    """A temporary path in ``target``'s folder, renamed onto ``target`` when the block succeeds."""
-    target = Path(target)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, name = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-    os.close(fd)
-    tmp = Path(name)
-    try:
-        yield tmp
-        with open(tmp, "rb+") as f:
-            os.fsync(f.fileno())
-        os.chmod(tmp, file_mode())
-        os.replace(tmp, target)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
 
 
 def write_text(target: Path, text: str) -> Path:

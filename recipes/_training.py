@@ -10,8 +10,6 @@ was never interrupted.
 from __future__ import annotations
 
 import logging
-import os
-import tempfile
 import warnings
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -26,8 +24,7 @@ from torch import nn
 
 from rvqlayer import MultiStageQuantizer
 from rvqlayer._checks import fail
-
-from ._outputs import file_mode
+from rvqlayer.files import atomic_write
 
 CHECKPOINT = Path("checkpoints") / "last.ckpt"
 
@@ -42,19 +39,8 @@ class AtomicCheckpointIO(TorchCheckpointIO):
     """
 
     def save_checkpoint(self, checkpoint: dict[str, Any], path: Any, storage_options: Any = None) -> None:
-        target = Path(path)
-        target.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-        try:
-            with os.fdopen(fd, "wb") as f:
-                torch.save(checkpoint, f)
-                f.flush()
-                os.fsync(f.fileno())
-            os.chmod(tmp, file_mode())
-            os.replace(tmp, target)
-        finally:
-            if os.path.exists(tmp):
-                os.unlink(tmp)
+        with atomic_write(path) as f:
+            torch.save(checkpoint, f)
 
     def load_checkpoint(self, path: Any, map_location: Any = None, weights_only: bool | None = None) -> dict[str, Any]:
         return read_checkpoint(Path(path))

@@ -78,4 +78,6 @@ def check_mask(mask: Any, shape: tuple[int, ...]) -> None:
     if mask.dtype != torch.bool:
         raise fail("mask", "of dtype torch.bool", mask.dtype)
     if tuple(mask.shape) != tuple(shape):
-        raise fail("mask", f"of shape {tuple(shape)} (the input without its feature axis)", f"shape {tuple(mask.shape)}")
+        raise fail(
+            "mask", f"of shape {tuple(shape)} (the input without its feature axis)", f"shape {tuple(mask.shape)}"
+        )

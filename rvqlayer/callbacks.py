@@ -15,7 +15,6 @@ from __future__ import annotations
 import importlib.util
 import math
 import os
-import tempfile
 import warnings
 from typing import Any, Literal
 
@@ -23,6 +22,7 @@ import pytorch_lightning as pl
 import torch
 
 from ._checks import check_choice, check_float, check_int, fail
+from .files import atomic_path
 from .health import HealthReport
 from .quantizer import MultiStageQuantizer
 
@@ -320,13 +320,6 @@ class CodebookMonitor(pl.Callback):
             ax_left.set_xlabel("stage")
             ax_left.set_ylabel("energy left (dB)")
             ax_left.set_title(f"{name}: energy left after each stage")
-        os.makedirs(os.path.dirname(path) or ".", exist_ok=True)
-        handle, tmp = tempfile.mkstemp(suffix=".png", dir=os.path.dirname(path) or ".")
-        os.close(handle)
-        try:
+        with atomic_path(path) as tmp:
             fig.savefig(tmp, format="png", dpi=80)
-            os.replace(tmp, path)
-        finally:
-            if os.path.exists(tmp):
-                os.remove(tmp)
         return path

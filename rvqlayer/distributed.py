@@ -47,4 +47,3 @@ def gather_rows(rows: torch.Tensor) -> torch.Tensor:
     parts = [torch.empty_like(padded) for _ in sizes]
     dist.all_gather(parts, padded)
     return torch.cat([p[: int(s)] for p, s in zip(parts, sizes)])
-

@@ -12,13 +12,13 @@ from __future__ import annotations
 
 import json
 import os
-import tempfile
 from pathlib import Path
 from typing import Any
 
 import torch
 
 from ._checks import RvqlayerError, fail
+from .files import atomic_path
 from .quantizer import MultiStageQuantizer
 
 FILE_FORMAT = "rvqlayer-codebooks"
@@ -26,27 +26,8 @@ FILE_VERSION = "1"
 
 
 def quantizer_config(quantizer: MultiStageQuantizer) -> dict[str, Any]:
-    """Constructor options that rebuild ``quantizer`` (JSON-serialisable)."""
-    first = quantizer.codebooks[0]
-    return {
-        "dim": quantizer.dim,
-        "stages": quantizer.stages,
-        "entries": quantizer.entries,
-        "code_dim": quantizer.code_dim,
-        "update": quantizer.update,
-        "ema_decay": quantizer.ema_decay,
-        "beta": quantizer.beta,
-        "init": first.init,
-        "init_iters": first.init_iters,
-        "init_restarts": first.init_restarts,
-        "init_points": first.init_points,
-        "reseed_below": first.reseed_below,
-        "stage_dropout": quantizer.stage_dropout,
-        "metric": quantizer.metric,
-        "axis": quantizer.axis,
-        "chunk": quantizer.chunk,
-        "eps": first.eps,
-    }
+    """Constructor options that rebuild ``quantizer``: :meth:`MultiStageQuantizer.config`."""
+    return quantizer.config()
 
 
 def _safetensors() -> Any:
@@ -76,19 +57,9 @@ def save_codebooks(quantizer: MultiStageQuantizer, path: str | os.PathLike[str])
     st = _safetensors()
     target = Path(path)
     tensors = {name: t.detach().cpu().contiguous().clone() for name, t in quantizer.state_dict().items()}
-    metadata = {"format": FILE_FORMAT, "version": FILE_VERSION, "config": json.dumps(quantizer_config(quantizer))}
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-    os.close(fd)
-    try:
-        st.save_file(tensors, tmp, metadata=metadata)
-        mask = os.umask(0)
-        os.umask(mask)
-        os.chmod(tmp, 0o666 & ~mask)  # mkstemp made it 0600
-        os.replace(tmp, target)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    metadata = {"format": FILE_FORMAT, "version": FILE_VERSION, "config": json.dumps(quantizer.config())}
+    with atomic_path(target) as tmp:
+        st.save_file(tensors, str(tmp), metadata=metadata)
     return target
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import torch
 from torch import nn
@@ -125,7 +126,28 @@ class MultiStageQuantizer(nn.Module):
             )
             for _ in range(stages)
         )
-        self.ema_decay = self.codebooks[0].ema_decay
+        first = self.codebooks[0]
+        self.ema_decay = first.ema_decay
+        # The single owner of the options: repr, export metadata, checkpoints and load checks read it.
+        self._config = {
+            "dim": self.dim,
+            "stages": self.stages,
+            "entries": self.entries,
+            "code_dim": self.code_dim,
+            "update": self.update,
+            "ema_decay": first.ema_decay,
+            "beta": self.beta,
+            "init": first.init,
+            "init_iters": first.init_iters,
+            "init_restarts": first.init_restarts,
+            "init_points": first.init_points,
+            "reseed_below": first.reseed_below,
+            "stage_dropout": self.stage_dropout,
+            "metric": self.metric,
+            "axis": self.axis,
+            "chunk": self.chunk,
+            "eps": first.eps,
+        }
         if self.code_dim < dim:
             self.project_in: nn.Module = nn.Linear(dim, self.code_dim)
             self.project_out: nn.Module = nn.Linear(self.code_dim, dim)
@@ -146,12 +168,19 @@ class MultiStageQuantizer(nn.Module):
                 self._buffers[name] = t.float()
         return self
 
+    def config(self) -> dict[str, Any]:
+        """Every constructor option, as a plain JSON-serialisable dict.
+
+        ``MultiStageQuantizer(**q.config())`` builds a layer with the same
+        options; export files, checkpoints and ``repr`` all read this dict.
+
+        >>> MultiStageQuantizer(4, stages=2, entries=8).config()["entries"]
+        8
+        """
+        return dict(self._config)
+
     def extra_repr(self) -> str:
-        return (
-            f"dim={self.dim}, stages={self.stages}, entries={self.entries}, code_dim={self.code_dim}, "
-            f"update={self.update!r}, beta={self.beta}, stage_dropout={self.stage_dropout}, "
-            f"metric={self.metric!r}, axis={self.axis}"
-        )
+        return ", ".join(f"{k}={v!r}" for k, v in self._config.items())
 
     # ----------------------------------------------------------------- helpers
     def _check_stages(self, stages: int | None) -> int:
@@ -180,9 +209,7 @@ class MultiStageQuantizer(nn.Module):
         return per_example.view(shape).expand(lead).reshape(lead) if len(lead) else per_example.view(())
 
     # ----------------------------------------------------------------- forward
-    def forward(
-        self, x: torch.Tensor, mask: torch.Tensor | None = None, stages: int | None = None
-    ) -> QuantizerOutput:
+    def forward(self, x: torch.Tensor, mask: torch.Tensor | None = None, stages: int | None = None) -> QuantizerOutput:
         """Quantize ``x`` (feature axis ``axis``); learn in training mode.
 
         Args:
@@ -292,10 +319,13 @@ class MultiStageQuantizer(nn.Module):
         if codes.ndim == 0 or not (1 <= codes.shape[-1] <= self.stages):
             raise fail("codes", f"of shape [..., s] with 1 <= s <= {self.stages}", f"shape {tuple(codes.shape)}")
         if self.axis >= 0 and codes.ndim <= self.axis:
-            raise fail("codes", f"at least {self.axis + 1} dimensions for axis={self.axis}", f"shape {tuple(codes.shape)}")
+            raise fail(
+                "codes", f"at least {self.axis + 1} dimensions for axis={self.axis}", f"shape {tuple(codes.shape)}"
+            )
         if codes.numel() and (int(codes.min()) < -1 or int(codes.max()) >= self.entries):
             raise fail(
-                "codes", f"in [0, {self.entries - 1}] (or -1 for a skipped stage)",
+                "codes",
+                f"in [0, {self.entries - 1}] (or -1 for a skipped stage)",
                 f"values in [{int(codes.min())}, {int(codes.max())}]",
             )
         lead = codes.shape[:-1]

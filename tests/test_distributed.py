@@ -48,9 +48,7 @@ def _worker(rank, init_file, out_dir):
 def rank_states(tmp_path_factory):
     out = tmp_path_factory.mktemp("ddp")
     mp.spawn(_worker, args=(str(out / "init"), str(out)), nprocs=WORLD, join=True)
-    return {
-        r: [torch.load(out / f"rank{k}_{r}.pt", weights_only=True) for k in range(WORLD)] for r in SETTINGS
-    }
+    return {r: [torch.load(out / f"rank{k}_{r}.pt", weights_only=True) for k in range(WORLD)] for r in SETTINGS}
 
 
 @pytest.mark.parametrize("reseed_below", SETTINGS)

@@ -350,3 +350,37 @@ def test_shapes_and_round_trip(lead, dim, stages, use, feature_first, seed):
     codes = q.encode(x, stages=use)
     assert codes.shape == vec_shape + (use,) and int(codes.min()) >= 0
     torch.testing.assert_close(q.decode(codes), q(x, stages=use).quantized, rtol=0, atol=1e-5)
+
+
+# --------------------------------------------------------------- configuration
+def test_config_rebuilds_an_identical_layer():
+    options = dict(
+        dim=12,
+        stages=3,
+        entries=32,
+        code_dim=6,
+        update="gradient",
+        ema_decay=0.9,
+        beta=0.5,
+        init="random",
+        init_iters=4,
+        init_restarts=2,
+        init_points=1000,
+        reseed_below=0.1,
+        stage_dropout=0.3,
+        metric="cosine",
+        axis=1,
+        chunk=128,
+        eps=1e-4,
+    )
+    q = MultiStageQuantizer(**options)
+    assert q.config() == options
+    defaults = MultiStageQuantizer(12).config()
+    assert all(defaults[k] != v for k, v in options.items() if k != "dim"), "every option must differ from its default"
+    twin = MultiStageQuantizer(**q.config())
+    assert twin.config() == q.config()
+    assert repr(twin) == repr(q)
+    assert twin.state_dict().keys() == q.state_dict().keys()
+    twin.load_state_dict(q.state_dict())
+    x = torch.randn(2, 12, 5)
+    torch.testing.assert_close(twin.eval().decode(twin.encode(x)), q.eval().decode(q.encode(x)))

@@ -5,6 +5,7 @@ Every message has one shape: "expected `arg` to be ..., got ...".
 
 from __future__ import annotations
 
+import numbers
 from collections.abc import Iterable
 from typing import Any
 
@@ -28,8 +29,9 @@ def check_choice(arg: str, value: Any, choices: Iterable[str]) -> str:
 
 
 def check_int(arg: str, value: Any, low: int, high: int | None = None) -> int:
-    if isinstance(value, bool) or not isinstance(value, int):
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
         raise fail(arg, "an int", f"{value!r} ({type(value).__name__})")
+    value = int(value)
     if value < low or (high is not None and value > high):
         bound = f">= {low}" if high is None else f"in [{low}, {high}]"
         raise fail(arg, f"an int {bound}", value)
@@ -45,7 +47,7 @@ def check_float(
     low_open: bool = False,
     high_open: bool = False,
 ) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float)):
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
         raise fail(arg, "a number", f"{value!r} ({type(value).__name__})")
     value = float(value)
     too_low = value <= low if low_open else value < low

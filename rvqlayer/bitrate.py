@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 
-from ._checks import check_float, check_int
+from ._checks import check_float, check_int, fail
 
 
 def bits_per_vector(stages: int, entries: int) -> float:
@@ -26,5 +26,8 @@ def bitrate(frame_rate: float, stages: int, entries: int) -> float:
     >>> bitrate(75.0, 8, 1024)
     6000.0
     """
-    check_float("frame_rate", frame_rate, 0.0, float("inf"), low_open=True, high_open=True)
-    return frame_rate * bits_per_vector(stages, entries)
+    rate = check_float("frame_rate", frame_rate, 0.0, float("inf"), low_open=True, high_open=True)
+    bits = rate * bits_per_vector(stages, entries)
+    if not math.isfinite(bits):
+        raise fail("frame_rate", "small enough for a finite bitrate", f"{frame_rate!r} ({bits} bit/s)")
+    return bits

@@ -3,7 +3,8 @@ k-means initialisation and dead-code reseeding."""
 
 from __future__ import annotations
 
-from typing import Literal
+from dataclasses import dataclass, field
+from typing import Any, Literal
 
 import torch
 import torch.nn.functional as F
@@ -11,7 +12,7 @@ from torch import nn
 
 from . import distributed as _dist
 from ._checks import check_choice, check_float, check_int, fail
-from .ema import assignment_stats, ema_step, smoothed_codewords
+from .ema import assignment_stats, moving_average_, smoothed_codewords
 from .kmeans import fit_kmeans
 from .search import Metric, nearest_code
 
@@ -96,6 +97,8 @@ class Codebook(nn.Module):
             self.register_buffer("ema_sum", start.clone())
         self.register_buffer("ema_count", torch.ones(entries))
         self.register_buffer("last_count", torch.zeros(entries))
+        # Use actually made: starts like ema_count, follows the assignments, never reset by reseeding.
+        self.register_buffer("usage_count", torch.ones(entries))
         self.register_buffer("ema_drift", torch.zeros(()))
         self.register_buffer("initialised", torch.tensor(self.init == "random"))
         self.register_buffer("step", torch.zeros((), dtype=torch.int64))
@@ -105,7 +108,7 @@ class Codebook(nn.Module):
     def _apply(self, fn, recurse=True):  # type: ignore[no-untyped-def]
         # Statistics (and EMA codewords, derived from them) stay float32 whatever .half() does.
         super()._apply(fn, recurse)
-        keep = ["ema_count", "last_count", "ema_drift", "pending_reseed"]
+        keep = ["ema_count", "last_count", "usage_count", "ema_drift", "pending_reseed"]
         keep += ["codewords", "ema_sum"] if self.update == "ema" else ["previous_codewords"]
         for name in keep:
             t = self._buffers[name]
@@ -132,18 +135,46 @@ class Codebook(nn.Module):
         return nearest_code(x, self.codewords, metric=self.metric, chunk=self.chunk)
 
     def forward(self, x: torch.Tensor, weight: torch.Tensor | None = None) -> tuple[torch.Tensor, torch.Tensor]:
+        codes, q, update = self.plan_step(x, weight)
+        if update is not None:
+            self.commit_step(update)
+        return codes, q
+
+    def plan_step(
+        self, x: torch.Tensor, weight: torch.Tensor | None = None
+    ) -> tuple[torch.Tensor, torch.Tensor, StepUpdate | None]:
+        """Codes ``[n]``, codewords ``[n, code_dim]`` and, in training, the update not yet applied.
+
+        Nothing in the module changes here; :meth:`commit_step` writes the
+        update. The multi-stage layer plans every stage first and commits only
+        when all stages succeeded, so a failing step changes no stage.
+        """
         if x.ndim != 2 or x.shape[1] != self.code_dim:
             raise fail("x", f"of shape [n, {self.code_dim}]", f"shape {tuple(x.shape)}")
         if weight is None:
             weight = torch.ones(x.shape[0], dtype=torch.bool, device=x.device)
-        learn = self.training
-        if learn and not bool(self.initialised):
-            self.initialise(x[weight])
-        codes, _ = self.search(x)
-        q = F.embedding(codes, self.codewords.float())
-        if learn:
-            self._learn(x.detach(), codes, weight)
-        return codes, q
+        if not self.training:
+            codes, _ = self.search(x)
+            return codes, F.embedding(codes, self.codewords.float()), None
+        update = StepUpdate()
+        if not bool(self.initialised):
+            self._plan_init(x[weight], update)
+        current = update.values.get("codewords", self.codewords.detach())
+        codes, _ = nearest_code(x, current, metric=self.metric, chunk=self.chunk)
+        table = self.codewords.float()
+        if "codewords" in update.values:  # initialised in this step: the new values, gradient still to the parameter
+            table = table + (current.float() - table).detach()
+        q = F.embedding(codes, table)
+        self._plan_learning(x.detach(), codes, weight, update)
+        return codes, q, update
+
+    @torch.no_grad()
+    def commit_step(self, update: StepUpdate) -> None:
+        """Write a planned update into the module's tensors."""
+        for name, value in update.values.items():
+            getattr(self, name).data.copy_(value)
+        self.step.add_(update.steps)
+        self.reseeds.add_(update.reseeded)
 
     # ---------------------------------------------------------------- learning
     @torch.no_grad()
@@ -152,6 +183,12 @@ class Codebook(nn.Module):
 
         Does nothing while no rank has any row.
         """
+        update = StepUpdate()
+        self._plan_init(x, update)
+        self.commit_step(update)
+
+    @torch.no_grad()
+    def _plan_init(self, x: torch.Tensor, update: StepUpdate) -> None:
         rows = _dist.gather_rows(x.detach().float())
         if rows.shape[0] == 0:
             return
@@ -162,59 +199,81 @@ class Codebook(nn.Module):
             used, self.entries, iters=self.init_iters, restarts=self.init_restarts, metric=self.metric, chunk=self.chunk
         )
         centroids = _dist.broadcast(fit.centroids.contiguous())
-        counts = _dist.broadcast(fit.counts * (rows.shape[0] / used.shape[0]))
-        counts = counts.to(self.ema_count)
-        self.codewords.data.copy_(centroids)
-        self.ema_count.copy_(counts)
+        counts = _dist.broadcast(fit.counts * (rows.shape[0] / used.shape[0])).to(self.ema_count)
+        update.values.update(codewords=centroids, ema_count=counts, usage_count=counts.clone())
+        update.values["initialised"] = torch.ones((), dtype=torch.bool)
         if self.update == "ema":
-            self.ema_sum.copy_(centroids * counts.unsqueeze(1))
+            update.values["ema_sum"] = centroids * counts.unsqueeze(1)
         else:
-            self.previous_codewords.copy_(centroids)
-        self.initialised.fill_(True)
+            update.values["previous_codewords"] = centroids
 
     @torch.no_grad()
-    def _learn(self, x: torch.Tensor, codes: torch.Tensor, weight: torch.Tensor) -> None:
+    def _plan_learning(self, x: torch.Tensor, codes: torch.Tensor, weight: torch.Tensor, update: StepUpdate) -> None:
         k, d = self.entries, self.code_dim
         counts, sums = assignment_stats(x, codes, weight.float(), k)
         if self.update == "ema":
             packed = _dist.all_reduce_sum(torch.cat([counts, sums.flatten()]))
             counts, sums = packed[:k], packed[k:].view(k, d)
-            ema_step(self.ema_count, self.ema_sum, counts, sums, self.ema_decay)
-            new = smoothed_codewords(self.ema_count, self.ema_sum, self.eps)
-            moved = (new - self.codewords).norm(dim=1).mean()
-            self.codewords.copy_(new)
         else:
             counts = _dist.all_reduce_sum(counts)
-            self.ema_count.mul_(self.ema_decay).add_(counts, alpha=1.0 - self.ema_decay)
-            moved = (self.codewords - self.previous_codewords).norm(dim=1).mean()
-        self.last_count.copy_(counts)
+        if float(counts.sum()) == 0.0:
+            return  # no real row on any rank: the step changes nothing
+        values, g = update.values, self.ema_decay
+        old = values.get("codewords", self.codewords.detach())
+        count = moving_average_(values.get("ema_count", self.ema_count).clone(), counts, g)
+        if self.update == "ema":
+            ema_sum = moving_average_(values.get("ema_sum", self.ema_sum).clone(), sums, g)
+            codewords = smoothed_codewords(count, ema_sum, self.eps)
+            moved = (codewords - old).norm(dim=1).mean()
+        else:
+            codewords = old.clone()
+            moved = (self.codewords.detach() - self.previous_codewords).norm(dim=1).mean()
+        values.update(ema_count=count, last_count=counts)
+        values["usage_count"] = moving_average_(values.get("usage_count", self.usage_count).clone(), counts, g)
         if int(self.step) > 0:
-            self.ema_drift.mul_(self.ema_decay).add_(moved, alpha=1.0 - self.ema_decay)
-        self.step.add_(1)
+            values["ema_drift"] = moving_average_(self.ema_drift.clone(), moved, g)
         below = max(self.reseed_below, float(self.pending_reseed))
-        self.pending_reseed.zero_()
+        values["pending_reseed"] = torch.zeros_like(self.pending_reseed)
         if below > 0:
-            self._reseed(x[weight], below)
-        if self.update == "gradient":
-            self.previous_codewords.copy_(self.codewords)
+            update.reseeded = self._plan_reseed(x[weight], below, count, codewords, values.get("ema_sum"))
+        values["codewords"] = codewords
+        if self.update == "ema":
+            values["ema_sum"] = ema_sum
+        else:
+            values["previous_codewords"] = codewords
+        update.steps = 1
 
     def dead_codes(self, below: float | None = None) -> torch.Tensor:
         """Bool ``[K]``: codes whose moving-average count is under ``below`` times the uniform rate.
 
         ``below`` defaults to ``reseed_below`` (or 0.03 when reseeding is off).
+        This is the count the reseeding rule reads; a reseeded code gets the
+        uniform rate here. What the codes were actually used for is
+        ``usage_count`` (read by :meth:`statistics`).
         """
-        share = below if below is not None else (self.reseed_below or 0.03)
-        return self.ema_count < share * self.ema_count.sum() / self.entries
+        return _below_share(self.ema_count, self.dead_share(below))
+
+    def dead_share(self, below: float | None = None) -> float:
+        """The dead-code threshold as a share of the uniform rate (``reseed_below``, or 0.03 when off)."""
+        return below if below is not None else (self.reseed_below or 0.03)
 
     def request_reseed(self, below: float) -> None:
         """Reseed, at the next training step, every code under ``below`` times the uniform rate."""
         self.pending_reseed.fill_(check_float("below", below, 0.0, 1.0, low_open=True))
 
-    def _reseed(self, rows: torch.Tensor, below: float) -> None:
-        dead = self.dead_codes(below)
+    def _plan_reseed(
+        self,
+        rows: torch.Tensor,
+        below: float,
+        count: torch.Tensor,
+        codewords: torch.Tensor,
+        ema_sum: torch.Tensor | None,
+    ) -> int:
+        """Move dead codes (in the planned ``count``) onto rows of this batch; edits the planned tensors in place."""
+        dead = _below_share(count, below)
         n_dead = int(dead.sum())
         if n_dead == 0:
-            return
+            return 0
         have = torch.tensor([float(rows.shape[0] > 0)], device=rows.device)
         if rows.shape[0] > 0:
             picks = rows[torch.randint(rows.shape[0], (n_dead,), device=rows.device)].float()
@@ -224,11 +283,47 @@ class Codebook(nn.Module):
             picks = torch.zeros(n_dead, self.code_dim, device=rows.device)
         _dist.broadcast(have)
         if float(have) == 0.0:
-            return
+            return 0
         picks = _dist.broadcast(picks.contiguous())
-        rate = self.ema_count.sum() / self.entries
-        self.codewords.data[dead] = picks.to(self.codewords.dtype)
-        self.ema_count[dead] = rate
-        if self.update == "ema":
-            self.ema_sum[dead] = picks * rate
-        self.reseeds.add_(n_dead)
+        rate = count.sum() / self.entries
+        codewords[dead] = picks.to(codewords.dtype)
+        count[dead] = rate
+        if ema_sum is not None:
+            ema_sum[dead] = picks * rate
+        return n_dead
+
+    def statistics(self, counts: torch.Tensor | None = None) -> dict[str, Any]:
+        """This stage's own figures for health reporting (see :class:`~rvqlayer.health.StageStatistics`).
+
+        ``counts`` ``[K]`` replaces the moving-average usage (for example the
+        codes of a held-out set).
+        """
+        usage = self.usage_count if counts is None else counts
+        return {
+            "entries": self.entries,
+            "usage_counts": usage.detach().float().cpu().clone(),
+            "batch_counts": (self.last_count if counts is None else counts).detach().float().cpu().clone(),
+            "reseeds": int(self.reseeds),
+            "drift": float(self.ema_drift),
+            "dead_share": self.dead_share(),
+        }
+
+
+def _below_share(counts: torch.Tensor, share: float) -> torch.Tensor:
+    """Bool ``[K]``: counts under ``share`` times their uniform rate ``sum / K``."""
+    return counts < share * counts.sum() / counts.shape[0]
+
+
+@dataclass
+class StepUpdate:
+    """A planned training step of one :class:`Codebook`: new tensor values, not yet written.
+
+    Attributes:
+        values: buffer or parameter name -> its new value.
+        steps: 1 when the step learned something (0: no real rows anywhere).
+        reseeded: codes moved onto batch vectors.
+    """
+
+    values: dict[str, torch.Tensor] = field(default_factory=dict)
+    steps: int = 0
+    reseeded: int = 0

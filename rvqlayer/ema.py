@@ -12,6 +12,18 @@ from __future__ import annotations
 import torch
 
 
+def moving_average_(average: torch.Tensor, value: torch.Tensor | float, decay: float) -> torch.Tensor:
+    """``average <- decay * average + (1 - decay) * value``, in place; returns ``average``.
+
+    The one moving-average update of the package: codebook counts and sums,
+    usage, drift and the per-stage health figures all go through it.
+
+    >>> moving_average_(torch.tensor([1.0]), torch.tensor([3.0]), 0.5)
+    tensor([2.])
+    """
+    return average.mul_(decay).add_(value, alpha=1.0 - decay)
+
+
 def ema_step(
     counts: torch.Tensor,
     sums: torch.Tensor,
@@ -28,8 +40,8 @@ def ema_step(
         batch_sums: ``[k, d]`` sum of the vectors assigned to each code.
         decay: g in ``[0, 1)``.
     """
-    counts.mul_(decay).add_(batch_counts, alpha=1.0 - decay)
-    sums.mul_(decay).add_(batch_sums, alpha=1.0 - decay)
+    moving_average_(counts, batch_counts, decay)
+    moving_average_(sums, batch_sums, decay)
 
 
 def smoothed_codewords(counts: torch.Tensor, sums: torch.Tensor, eps: float) -> torch.Tensor:

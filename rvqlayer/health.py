@@ -8,16 +8,13 @@ Those buffers are all-reduced inside each training step under
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import asdict, dataclass, field
-from typing import TYPE_CHECKING
+from typing import Any
 
 import torch
 
 from ._checks import check_float
-
-if TYPE_CHECKING:
-    from .codebook import Codebook
-    from .quantizer import MultiStageQuantizer
 
 
 def perplexity(counts: torch.Tensor) -> float:
@@ -143,35 +140,85 @@ class HealthReport:
         return "\n".join(lines)
 
 
-def stage_health(
-    codebook: Codebook, stage: int, energy_left: float, commitment: float, steps: int, dead_below: float | None = None
-) -> StageHealth:
-    """Health of one :class:`~rvqlayer.Codebook` (the quantizer supplies the chain figures)."""
-    dead = int(codebook.dead_codes(dead_below).sum())
+@dataclass(frozen=True)
+class StageStatistics:
+    """What a layer exposes about one stage; the input of :func:`health_report`.
+
+    :meth:`MultiStageQuantizer.stage_statistics` builds these from the
+    figures each part keeps where it computes them: the codebook its usage,
+    reseeds and drift, the layer the chain figures (energy left, commitment).
+
+    Attributes:
+        stage: 1-based stage number.
+        entries: codewords K.
+        usage_counts: ``[K]`` moving average of the assignments actually made
+            (reseeding does not count as use), or counts of given codes.
+        batch_counts: ``[K]`` assignments in the last training batch.
+        reseeds: codes reseeded so far.
+        drift: moving average of the mean codeword movement per update.
+        dead_share: default dead-code threshold, share of the uniform rate.
+        energy_left: moving average of ``||residual after the stage||^2 / ||x||^2``.
+        commitment: moving average of the stage's squared error per element.
+        steps: training steps that fed ``energy_left`` and ``commitment``.
+    """
+
+    stage: int
+    entries: int
+    usage_counts: torch.Tensor
+    batch_counts: torch.Tensor
+    reseeds: int
+    drift: float
+    dead_share: float
+    energy_left: float
+    commitment: float
+    steps: int
+
+
+def stage_health(stats: StageStatistics, dead_below: float | None = None) -> StageHealth:
+    """Health of one stage from its :class:`StageStatistics`."""
+    share = stats.dead_share if dead_below is None else dead_below
+    counts = stats.usage_counts
+    dead = int((counts < share * counts.sum() / stats.entries).sum())
     return StageHealth(
-        stage=stage,
-        entries=codebook.entries,
-        usage=1.0 - dead / codebook.entries,
+        stage=stats.stage,
+        entries=stats.entries,
+        usage=1.0 - dead / stats.entries,
         dead=dead,
-        reseeds=int(codebook.reseeds),
-        perplexity=perplexity(codebook.ema_count),
-        batch_perplexity=perplexity(codebook.last_count),
-        energy_left=energy_left,
-        energy_left_db=_db(energy_left),
-        commitment=commitment,
-        drift=float(codebook.ema_drift),
-        entropy_bits=entropy_nats(codebook.ema_count) / math.log(2.0),
-        bits=math.log2(codebook.entries),
-        steps=steps,
+        reseeds=stats.reseeds,
+        perplexity=perplexity(counts),
+        batch_perplexity=perplexity(stats.batch_counts),
+        energy_left=stats.energy_left,
+        energy_left_db=_db(stats.energy_left),
+        commitment=stats.commitment,
+        drift=stats.drift,
+        entropy_bits=entropy_nats(counts) / math.log(2.0),
+        bits=math.log2(stats.entries),
+        steps=stats.steps,
     )
 
 
-def quantizer_health(quantizer: MultiStageQuantizer, dead_below: float | None = None) -> HealthReport:
-    """Build the :class:`HealthReport` of ``quantizer`` from its buffers; changes nothing.
+def health_report(stats: Sequence[StageStatistics], dead_below: float | None = None) -> HealthReport:
+    """The :class:`HealthReport` of a layer's per-stage statistics; a pure function.
 
     ``dead_below`` is the dead-code threshold as a share of the uniform usage
-    rate, in ``(0, 1]``; ``None`` takes each codebook's ``reseed_below`` (0.03
-    when reseeding is off).
+    rate, in ``(0, 1]``; ``None`` takes each stage's ``dead_share`` (the
+    codebook's ``reseed_below``, 0.03 when reseeding is off).
+    """
+    if dead_below is not None:
+        check_float("dead_below", dead_below, 0.0, 1.0, low_open=True)
+    stages = [stage_health(s, dead_below) for s in stats]
+    left = stages[-1].energy_left if stages else 1.0
+    return HealthReport(
+        stages=stages,
+        bits_per_vector=sum(s.bits for s in stages),
+        entropy_bits=sum(s.entropy_bits for s in stages),
+        energy_left=left,
+        energy_left_db=_db(left),
+    )
+
+
+def quantizer_health(quantizer: Any, dead_below: float | None = None) -> HealthReport:
+    """The report of any layer with ``stage_statistics()``; changes nothing.
 
     >>> from rvqlayer import MultiStageQuantizer
     >>> torch.manual_seed(0) and None
@@ -181,24 +228,4 @@ def quantizer_health(quantizer: MultiStageQuantizer, dead_below: float | None = 
     >>> len(report.stages), report.bits_per_vector, report.stages[0].usage
     (2, 6.0, 1.0)
     """
-    if dead_below is not None:
-        check_float("dead_below", dead_below, 0.0, 1.0, low_open=True)
-    stages = [
-        stage_health(
-            cb,
-            i + 1,
-            float(quantizer.energy_left[i]),
-            float(quantizer.stage_error[i]),
-            int(quantizer.stats_steps[i]),
-            dead_below,
-        )
-        for i, cb in enumerate(quantizer.codebooks)
-    ]
-    left = stages[-1].energy_left if stages else 1.0
-    return HealthReport(
-        stages=stages,
-        bits_per_vector=sum(s.bits for s in stages),
-        entropy_bits=sum(s.entropy_bits for s in stages),
-        energy_left=left,
-        energy_left_db=_db(left),
-    )
+    return health_report(quantizer.stage_statistics(), dead_below)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any
 
@@ -13,8 +14,20 @@ from ._checks import check_choice, check_features, check_float, check_int, check
 from .bitrate import bitrate as _bitrate
 from .bitrate import bits_per_vector as _bits_per_vector
 from .codebook import Codebook, Init, Update
-from .health import HealthReport, quantizer_health
+from .ema import moving_average_
+from .health import HealthReport, StageStatistics, health_report
 from .search import Metric, beam_encode
+
+# Bounds that keep a layer (or a file that declares one) from exhausting memory.
+MAX_DIM = 2**16
+MAX_STAGES = 1024
+MAX_ENTRIES = 2**20
+MAX_CODEBOOK_VALUES = 2**29
+# Longest lookup-space vector accepted: (2 * norm)^2 times a few stays below float32's maximum.
+MAX_LOOKUP_NORM = 4e18
+# The fields of the persistent ``layout`` buffer, in order.
+_LAYOUT_NUMBERS = ("dim", "entries", "code_dim")
+_LAYOUT_CHOICES = {"update": ("ema", "gradient"), "metric": ("l2", "cosine")}
 
 
 @dataclass
@@ -98,11 +111,17 @@ class MultiStageQuantizer(nn.Module):
         eps: float = 1e-5,
     ) -> None:
         super().__init__()
-        self.dim = check_int("dim", dim, 1)
-        self.stages = check_int("stages", stages, 1)
-        self.entries = check_int("entries", entries, 1)
+        self.dim = check_int("dim", dim, 1, MAX_DIM)
+        self.stages = check_int("stages", stages, 1, MAX_STAGES)
+        self.entries = check_int("entries", entries, 1, MAX_ENTRIES)
         code_dim = dim if code_dim is None else code_dim
         self.code_dim = check_int("code_dim", code_dim, 1, dim)
+        if self.stages * self.entries * self.code_dim > MAX_CODEBOOK_VALUES:
+            raise fail(
+                "stages * entries * code_dim",
+                f"at most {MAX_CODEBOOK_VALUES} codebook values (4 GiB of float32 with the EMA sums)",
+                self.stages * self.entries * self.code_dim,
+            )
         self.update = check_choice("update", update, ("ema", "gradient"))
         self.beta = check_float("beta", beta, 0.0, float("inf"), high_open=True)
         self.stage_dropout = check_float("stage_dropout", stage_dropout, 0.0, 1.0)
@@ -158,6 +177,14 @@ class MultiStageQuantizer(nn.Module):
         self.register_buffer("energy_left", torch.ones(stages))
         self.register_buffer("stage_error", torch.zeros(stages))
         self.register_buffer("stats_steps", torch.zeros(stages, dtype=torch.int64))
+        # What the tensors mean, stored with them: loading checks it field by field.
+        layout = [self._config[name] for name in _LAYOUT_NUMBERS] + [
+            _LAYOUT_CHOICES[name].index(self._config[name]) for name in _LAYOUT_CHOICES
+        ]
+        self.register_buffer("layout", torch.tensor(layout, dtype=torch.int64))
+        # Follows .half()/.to(dtype): the dtype of what decode returns.
+        self.register_buffer("dtype_probe", torch.zeros(0), persistent=False)
+        self.register_load_state_dict_pre_hook(_check_loaded_state)
 
     def _apply(self, fn, recurse=True):  # type: ignore[no-untyped-def]
         # Health statistics stay float32 whatever .half() does.
@@ -218,6 +245,10 @@ class MultiStageQuantizer(nn.Module):
                 False marks padding kept out of statistics, initialisation,
                 reseeding and losses.
             stages: use only the first ``stages`` codebooks.
+
+        A training step is all or nothing: every stage is searched and its
+        update planned first, and the codebooks and statistics are written
+        only once all stages succeeded.
         """
         check_features("x", x, self.dim, self.axis)
         n_use = self._check_stages(stages)
@@ -227,20 +258,22 @@ class MultiStageQuantizer(nn.Module):
             real = mask.reshape(-1).to(rows.device)
         else:
             real = torch.ones(rows.shape[0], dtype=torch.bool, device=rows.device)
+        z = self._project_in(rows)
+        residual = _finite_lookup_input(z)
         stage_count = self._stage_counts(lead, n_use, rows.device)
         counts = stage_count.reshape(-1)
 
-        z = self.project_in(rows)
-        residual = z.float()
         total = torch.zeros_like(residual)
         codes = torch.full((rows.shape[0], n_use), -1, dtype=torch.int64, device=rows.device)
         loss = residual.new_zeros(())
-        report = residual.new_zeros(3, n_use)  # squared error left, real rows, input energy
+        chain = _ChainStats.empty(n_use, residual.device)
         signal = (residual.detach() ** 2).sum(-1)
+        updates = []
         for s in range(n_use):
             used = counts > s
             learn = used & real
-            stage_codes, q = self.codebooks[s](residual, learn)
+            stage_codes, q, update = self.codebooks[s].plan_step(residual, learn)
+            updates.append(update)
             q = q * used.unsqueeze(1)
             codes[:, s] = torch.where(used, stage_codes, torch.full_like(stage_codes, -1))
             w = learn.float()
@@ -250,15 +283,19 @@ class MultiStageQuantizer(nn.Module):
             if self.update == "gradient":
                 loss = loss + ((((residual.detach() - q) ** 2).sum(-1)) * w).sum() / denom
             if self.training:
-                report[:, s] = torch.stack([(err.detach() * w).sum(), w.sum(), (signal * w).sum()])
+                chain.add(s, squared_error=(err.detach() * w).sum(), rows=w.sum(), energy=(signal * w).sum())
             total = total + q.detach()
             residual = residual - q.detach()
         if self.training:
-            self._record(report)
+            with torch.no_grad():
+                chain = chain.all_reduce()
+                for codebook, update in zip(self.codebooks, updates):
+                    codebook.commit_step(update)
+                self._commit_chain(chain)
 
         # Straight-through: the value is the codeword sum, the gradient goes to z unchanged.
         zf = z.float()
-        out = self.project_out(zf + (total - zf).detach())
+        out = self._project_out(zf + (total - zf).detach())
         return QuantizerOutput(
             quantized=self._unflatten(out, lead).to(x.dtype),
             codes=codes.reshape(*lead, n_use),
@@ -266,22 +303,40 @@ class MultiStageQuantizer(nn.Module):
             stage_count=stage_count,
         )
 
+    def _project_in(self, rows: torch.Tensor) -> torch.Tensor:
+        """Rows ``[n, dim]`` into the lookup space, in the projection's own dtype."""
+        if isinstance(self.project_in, nn.Linear):
+            rows = rows.to(self.project_in.weight.dtype)
+        return self.project_in(rows)
+
+    def _project_out(self, rows: torch.Tensor) -> torch.Tensor:
+        if isinstance(self.project_out, nn.Linear):
+            rows = rows.to(self.project_out.weight.dtype)
+        return self.project_out(rows)
+
     @torch.no_grad()
-    def _record(self, report: torch.Tensor) -> None:
-        report = _dist.all_reduce_sum(report)
-        err, rows, energy = report
+    def _commit_chain(self, chain: _ChainStats) -> None:
+        """Fold one step's per-stage figures into the moving averages (energy left, commitment).
+
+        A stage with no real row, no input energy or a non-finite figure keeps
+        its averages: one silent or extreme batch cannot poison them.
+        """
         g = self.ema_decay
-        for s in range(report.shape[1]):
-            if float(rows[s]) == 0:
+        tiny = torch.finfo(torch.float32).tiny
+        for s in range(chain.rows.shape[0]):
+            rows, energy = float(chain.rows[s]), float(chain.energy[s])
+            if rows == 0 or not energy > tiny:
                 continue
-            left = err[s] / energy[s].clamp_min(torch.finfo(torch.float32).tiny)
-            mse = err[s] / (rows[s] * self.code_dim)
+            left = chain.squared_error[s] / chain.energy[s]
+            mse = chain.squared_error[s] / (chain.rows[s] * self.code_dim)
+            if not (math.isfinite(float(left)) and math.isfinite(float(mse))):
+                continue
             if int(self.stats_steps[s]) == 0:
                 self.energy_left[s] = left
                 self.stage_error[s] = mse
             else:
-                self.energy_left[s] = g * self.energy_left[s] + (1 - g) * left
-                self.stage_error[s] = g * self.stage_error[s] + (1 - g) * mse
+                moving_average_(self.energy_left[s], left, g)
+                moving_average_(self.stage_error[s], mse, g)
             self.stats_steps[s] += 1
 
     # ------------------------------------------------------- encode and decode
@@ -296,7 +351,7 @@ class MultiStageQuantizer(nn.Module):
         n_use = self._check_stages(stages)
         check_int("beam", beam, 1)
         rows, lead = self._flatten(x)
-        z = self.project_in(rows).float()
+        z = _finite_lookup_input(self._project_in(rows))
         if beam > 1:
             codes = beam_encode(z, [cb.codewords for cb in self.codebooks[:n_use]], beam=beam, chunk=self.chunk)
         else:
@@ -310,7 +365,8 @@ class MultiStageQuantizer(nn.Module):
     def decode(self, codes: torch.Tensor) -> torch.Tensor:
         """Vectors for ``codes`` ``[..., s]`` with ``1 <= s <= stages``; ``-1`` skips a stage.
 
-        Returns ``[..., dim]`` with the feature axis moved to ``axis``.
+        Returns ``[..., dim]`` with the feature axis moved to ``axis``, in the
+        layer's dtype (that of its projections, or of ``.to(dtype)``).
         """
         if not isinstance(codes, torch.Tensor):
             raise fail("codes", "a torch.Tensor", type(codes).__name__)
@@ -318,10 +374,9 @@ class MultiStageQuantizer(nn.Module):
             raise fail("codes", "an integer tensor", f"dtype {codes.dtype}")
         if codes.ndim == 0 or not (1 <= codes.shape[-1] <= self.stages):
             raise fail("codes", f"of shape [..., s] with 1 <= s <= {self.stages}", f"shape {tuple(codes.shape)}")
-        if self.axis >= 0 and codes.ndim <= self.axis:
-            raise fail(
-                "codes", f"at least {self.axis + 1} dimensions for axis={self.axis}", f"shape {tuple(codes.shape)}"
-            )
+        needed = self.axis + 1 if self.axis >= 0 else -self.axis
+        if codes.ndim < needed:
+            raise fail("codes", f"at least {needed} dimensions for axis={self.axis}", f"shape {tuple(codes.shape)}")
         if codes.numel() and (int(codes.min()) < -1 or int(codes.max()) >= self.entries):
             raise fail(
                 "codes",
@@ -334,15 +389,52 @@ class MultiStageQuantizer(nn.Module):
         for s in range(flat.shape[1]):
             c = flat[:, s]
             total = total + self.codebooks[s].lookup(c.clamp_min(0)) * (c >= 0).unsqueeze(1)
-        return self._unflatten(self.project_out(total), lead)
+        return self._unflatten(self._project_out(total), lead).to(self.dtype_probe.dtype)
 
-    def health(self, dead_below: float | None = None) -> HealthReport:
+    # ------------------------------------------------------------------ health
+    def stage_statistics(self, codes: torch.Tensor | None = None) -> list[StageStatistics]:
+        """What the layer knows about each stage, as plain records (see :mod:`rvqlayer.health`).
+
+        ``codes`` (int64 ``[..., s]``, ``-1`` for skipped stages) replaces the
+        training usage by the use these codes make of each entry.
+        """
+        usage: list[torch.Tensor | None] = [None] * self.stages
+        if codes is not None:
+            if not isinstance(codes, torch.Tensor) or codes.dtype.is_floating_point or codes.dtype == torch.bool:
+                raise fail(
+                    "codes",
+                    "an integer torch.Tensor",
+                    type(codes).__name__ if not isinstance(codes, torch.Tensor) else f"dtype {codes.dtype}",
+                )
+            if codes.ndim == 0 or not (1 <= codes.shape[-1] <= self.stages):
+                raise fail("codes", f"of shape [..., s] with 1 <= s <= {self.stages}", f"shape {tuple(codes.shape)}")
+            flat = codes.reshape(-1, codes.shape[-1]).long()
+            if flat.numel() and (int(flat.min()) < -1 or int(flat.max()) >= self.entries):
+                raise fail("codes", f"in [-1, {self.entries - 1}]", f"values in [{int(flat.min())}, {int(flat.max())}]")
+            for s in range(flat.shape[1]):
+                c = flat[:, s]
+                usage[s] = torch.bincount(c[c >= 0], minlength=self.entries).float()
+            usage = usage[: flat.shape[1]]
+        return [
+            StageStatistics(
+                stage=s + 1,
+                energy_left=float(self.energy_left[s]),
+                commitment=float(self.stage_error[s]),
+                steps=int(self.stats_steps[s]),
+                **self.codebooks[s].statistics(usage[s]),
+            )
+            for s in range(len(usage))
+        ]
+
+    def health(self, dead_below: float | None = None, codes: torch.Tensor | None = None) -> HealthReport:
         """Per-stage usage, perplexity, dead codes, reseeds, energy left, commitment and drift.
 
-        Computed from the statistics kept during training; ``dead_below``
-        (share of the uniform usage rate) defaults to ``reseed_below``.
+        Computed from the statistics kept during training, or, with ``codes``
+        (int64 ``[..., s]``, for example a held-out set's), usage and
+        perplexity of those codes. ``dead_below`` (share of the uniform usage
+        rate) defaults to ``reseed_below``.
         """
-        return quantizer_health(self, dead_below)
+        return health_report(self.stage_statistics(codes), dead_below)
 
     # ----------------------------------------------------------------- bitrate
     def bits_per_vector(self, stages: int | None = None) -> float:
@@ -352,3 +444,127 @@ class MultiStageQuantizer(nn.Module):
     def bitrate(self, frame_rate: float, stages: int | None = None) -> float:
         """Bits per second at ``frame_rate`` vectors per second."""
         return _bitrate(frame_rate, self._check_stages(stages), self.entries)
+
+
+def _finite_lookup_input(z: torch.Tensor) -> torch.Tensor:
+    """``z`` in float32 (the dtype of every distance and statistic), checked to stay finite there.
+
+    Rejects values that overflow float32, and vectors so long that squared
+    distances between them would (norm above ``MAX_LOOKUP_NORM``).
+    """
+    lookup = z.float()
+    if lookup.numel():
+        if not bool(torch.isfinite(lookup).all()):
+            bad = int((~torch.isfinite(lookup)).sum())
+            raise fail("x", "finite in float32 after the input projection", f"{bad} non-finite values")
+        norms = lookup.detach().pow(2).sum(-1)
+        if not bool((norms <= MAX_LOOKUP_NORM**2).all()):
+            raise fail(
+                "x",
+                f"vectors of norm at most {MAX_LOOKUP_NORM:.1e} in the lookup space (squared distances must stay "
+                "finite in float32)",
+                f"{int((~(norms <= MAX_LOOKUP_NORM**2)).sum())} longer vectors",
+            )
+    return lookup
+
+
+@dataclass
+class _ChainStats:
+    """One training step's per-stage sums over real rows (summed over ranks by :meth:`all_reduce`).
+
+    Attributes:
+        squared_error: ``[S]`` squared error left after each stage.
+        rows: ``[S]`` real rows that reached each stage.
+        energy: ``[S]`` squared norm of those rows' input (lookup space).
+    """
+
+    squared_error: torch.Tensor
+    rows: torch.Tensor
+    energy: torch.Tensor
+
+    @classmethod
+    def empty(cls, stages: int, device: torch.device) -> _ChainStats:
+        return cls(*torch.zeros(3, stages, device=device))
+
+    def add(self, stage: int, **figures: torch.Tensor) -> None:
+        for name, value in figures.items():
+            getattr(self, name)[stage] = value
+
+    def all_reduce(self) -> _ChainStats:
+        packed = _dist.all_reduce_sum(torch.stack([self.squared_error, self.rows, self.energy]))
+        return _ChainStats(*packed)
+
+
+def _layout_fields(layout: torch.Tensor) -> dict[str, Any]:
+    values = [int(v) for v in layout.tolist()]
+    named = dict(zip(_LAYOUT_NUMBERS, values))
+    for (name, choices), v in zip(_LAYOUT_CHOICES.items(), values[len(_LAYOUT_NUMBERS) :]):
+        named[name] = choices[v] if 0 <= v < len(choices) else f"<unknown {v}>"
+    return named
+
+
+def _check_loaded_state(
+    module: MultiStageQuantizer,
+    state_dict: dict[str, Any],
+    prefix: str,
+    local_metadata: Any,
+    strict: bool,
+    missing_keys: list[str],
+    unexpected_keys: list[str],
+    error_msgs: list[str],
+) -> None:
+    """Check a state before any of the layer's tensors is written: all or nothing.
+
+    The state's ``layout`` must match the layer's (dim, entries, code_dim,
+    update, metric); a state with more stages loads its first ``stages``
+    (see :meth:`MultiStageQuantizer.truncated`); every tensor must have the
+    layer's shape and finite values. A state without ``layout`` (written
+    before it existed) is checked by shapes alone.
+    """
+    own = module.state_dict()
+    key = prefix + "layout"
+    if key in state_dict:
+        layout = state_dict[key]
+        if not isinstance(layout, torch.Tensor) or layout.shape != module.layout.shape:
+            raise fail(f"state_dict[{key!r}]", f"a tensor of shape {tuple(module.layout.shape)}", repr(layout))
+        theirs, ours = _layout_fields(layout), _layout_fields(module.layout)
+        differ = [f"{n}={theirs[n]!r} (layer: {ours[n]!r})" for n in ours if theirs[n] != ours[n]]
+        if differ:
+            raise fail("state_dict", "the state of a layer with the same options", "one with " + ", ".join(differ))
+    else:
+        state_dict[key] = module.layout.clone()
+    head = prefix + "codebooks."
+    indices = {int(k[len(head) :].split(".", 1)[0]) for k in state_dict if k.startswith(head)}
+    held = max(indices) + 1 if indices else 0
+    if indices and held < module.stages:
+        raise fail("state_dict", f"the state of at least {module.stages} stages", f"{held} stages")
+    if held > module.stages:  # the first stages of a larger layer
+        for k in [
+            k for k in state_dict if k.startswith(head) and int(k[len(head) :].split(".", 1)[0]) >= module.stages
+        ]:
+            del state_dict[k]
+        for name in ("energy_left", "stage_error", "stats_steps"):
+            t = state_dict.get(prefix + name)
+            if isinstance(t, torch.Tensor) and t.ndim == 1 and t.shape[0] == held:
+                state_dict[prefix + name] = t[: module.stages]
+    for name, ref in own.items():
+        full = prefix + name
+        if full not in state_dict:
+            if strict:
+                raise fail("state_dict", f"a value for {full!r}", "none")
+            continue
+        t = state_dict[full]
+        if not isinstance(t, torch.Tensor):
+            raise fail(f"state_dict[{full!r}]", "a tensor", type(t).__name__)
+        if t.shape != ref.shape:
+            raise fail(f"state_dict[{full!r}]", f"of shape {tuple(ref.shape)}", f"shape {tuple(t.shape)}")
+        if t.is_floating_point() and t.numel() and not bool(torch.isfinite(t).all()):
+            raise fail(
+                f"state_dict[{full!r}]",
+                "finite (no NaN or Inf)",
+                f"{int((~torch.isfinite(t)).sum())} non-finite values",
+            )
+    if strict:
+        extra = sorted(k for k in state_dict if k.startswith(prefix) and k[len(prefix) :] not in own)
+        if extra:
+            raise fail("state_dict", "only this layer's tensors", f"unexpected {extra[:3]}")

@@ -98,10 +98,11 @@ def test_drift_is_the_mean_codeword_movement_of_the_last_update() -> None:
 def test_usage_dead_perplexity_and_bits_from_known_counts() -> None:
     q = _layer(stages=2)
     first, second = q.codebooks
-    first.ema_count.copy_(torch.tensor([50.0, 30.0, 10.0, 0.01, 0.0, 0.0, 0.0, 0.0]))
+    # usage_count: the moving average of assignments actually made (what health reads)
+    first.usage_count.copy_(torch.tensor([50.0, 30.0, 10.0, 0.01, 0.0, 0.0, 0.0, 0.0]))
     first.last_count.copy_(torch.tensor([4.0, 4.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0]))
     first.reseeds.fill_(7)
-    second.ema_count.fill_(2.0)
+    second.usage_count.fill_(2.0)
     report = q.health(dead_below=0.03)
     s1, s2 = report.stages
     # uniform rate 90.01 / 8 = 11.25; under 0.03 of it: the 0.01 entry and the four empty ones.
@@ -148,3 +149,31 @@ def test_as_dict_and_table() -> None:
 def test_dead_below_is_checked(bad: float) -> None:
     with pytest.raises(RvqlayerError, match="`dead_below`"):
         _layer().health(dead_below=bad)
+
+
+def test_reseeds_do_not_read_as_use() -> None:
+    # Every vector goes to one code; the others are reseeded each step, which resets their
+    # reseeding count (ema_count) but is no use of them.
+    torch.manual_seed(0)
+    q = MultiStageQuantizer(2, stages=1, entries=8, init="random", reseed_below=0.5, ema_decay=0.0)
+    cb = q.codebooks[0]
+    x = torch.full((64, 2), 5.0)  # the winner sits on it; reseeded codes land 1% of its scale away
+    for _ in range(12):
+        q(x)
+    stage = q.health().stages[0]
+    assert int(cb.reseeds) > 0
+    assert stage.usage <= 2 / 8 and stage.perplexity < 1.5
+
+
+def test_health_of_given_codes_counts_their_use() -> None:
+    q = _layer(stages=2)
+    codes = torch.tensor([[0, 1], [0, 2], [1, -1], [0, 3]])
+    report = q.health(codes=codes)
+    s1, s2 = report.stages
+    # stage 1 uses entries 0 (3x) and 1 (1x) of 8; stage 2 uses 1, 2, 3 once each (-1: stage left out)
+    assert (s1.dead, s2.dead) == (6, 5)
+    assert s1.perplexity == pytest.approx(math.exp(scipy.stats.entropy([3, 1])), rel=1e-6)
+    assert s2.perplexity == pytest.approx(3.0, rel=1e-6)
+    assert len(q.health(codes=codes[:, :1]).stages) == 1
+    with pytest.raises(RvqlayerError, match="`codes`"):
+        q.health(codes=torch.tensor([[0, 8]]))

@@ -7,6 +7,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import torch
+from einops import rearrange
 from torch import nn
 
 from . import distributed as _dist
@@ -218,7 +219,7 @@ class MultiStageQuantizer(nn.Module):
     def _flatten(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Size]:
         """``[..., dim]`` rows of ``x`` and the vector shape (``x`` without its feature axis)."""
         moved = x.movedim(self.axis, -1)
-        return moved.reshape(-1, self.dim), moved.shape[:-1]
+        return rearrange(moved, "... d -> (...) d"), moved.shape[:-1]
 
     def _unflatten(self, rows: torch.Tensor, lead: torch.Size) -> torch.Tensor:
         out = rows.reshape(*lead, self.dim)
@@ -384,7 +385,7 @@ class MultiStageQuantizer(nn.Module):
                 f"values in [{int(codes.min())}, {int(codes.max())}]",
             )
         lead = codes.shape[:-1]
-        flat = codes.reshape(-1, codes.shape[-1]).long()
+        flat = rearrange(codes, "... s -> (...) s").long()
         total = torch.zeros(flat.shape[0], self.code_dim, device=flat.device)
         for s in range(flat.shape[1]):
             c = flat[:, s]
@@ -408,7 +409,7 @@ class MultiStageQuantizer(nn.Module):
                 )
             if codes.ndim == 0 or not (1 <= codes.shape[-1] <= self.stages):
                 raise fail("codes", f"of shape [..., s] with 1 <= s <= {self.stages}", f"shape {tuple(codes.shape)}")
-            flat = codes.reshape(-1, codes.shape[-1]).long()
+            flat = rearrange(codes, "... s -> (...) s").long()
             if flat.numel() and (int(flat.min()) < -1 or int(flat.max()) >= self.entries):
                 raise fail("codes", f"in [-1, {self.entries - 1}]", f"values in [{int(flat.min())}, {int(flat.max())}]")
             for s in range(flat.shape[1]):

@@ -11,14 +11,9 @@ from typing import Any
 
 import torch
 
+from ._errors import RvqlayerError, fail
 
-class RvqlayerError(ValueError):
-    """Raised for invalid options or input; a subclass of ``ValueError``."""
-
-
-def fail(arg: str, expected: str, got: Any) -> RvqlayerError:
-    """Build the library's error for argument ``arg``."""
-    return RvqlayerError(f"expected `{arg}` to be {expected}, got {got}")
+__all__ = ["RvqlayerError", "fail", "check_choice", "check_int", "check_float", "check_features", "check_mask"]
 
 
 def check_choice(arg: str, value: Any, choices: Iterable[str]) -> str:

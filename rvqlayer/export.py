@@ -2,10 +2,12 @@
 
 The file holds every tensor of the quantizer's ``state_dict`` (codewords,
 projections, moving averages, counters) and, in the safetensors metadata, a
-JSON description of the constructor options. Loading runs no code from the
-file: safetensors parses only a JSON header and raw tensor bytes. The
-safetensors package is imported inside the functions, so the core library
-still imports with torch, numpy and einops only.
+JSON description of the constructor options with a sha256 checksum of the
+options and every tensor (file version 2). Loading runs no code from the
+file and allocates nothing before the header, the options and the checksum
+have been checked (:mod:`rvqlayer._container` parses the header itself).
+Writing uses the safetensors package, imported inside :func:`save_codebooks`,
+so the core library still imports with torch, numpy and einops only.
 """
 
 from __future__ import annotations
@@ -18,11 +20,26 @@ from typing import Any
 import torch
 
 from ._checks import RvqlayerError, fail
+from ._container import FILE_FORMAT, FILE_VERSION, checksum, read_codebook_file
 from .files import atomic_path
 from .quantizer import MultiStageQuantizer
 
-FILE_FORMAT = "rvqlayer-codebooks"
-FILE_VERSION = "1"
+__all__ = ["FILE_FORMAT", "FILE_VERSION", "load_codebooks", "quantizer_config", "save_codebooks"]
+
+# What a tensor's safetensors dtype name is, and back.
+_DTYPE_NAMES = {
+    torch.float64: "F64",
+    torch.float32: "F32",
+    torch.float16: "F16",
+    torch.bfloat16: "BF16",
+    torch.int64: "I64",
+    torch.int32: "I32",
+    torch.int16: "I16",
+    torch.int8: "I8",
+    torch.uint8: "U8",
+    torch.bool: "BOOL",
+}
+_DTYPES = {name: dtype for dtype, name in _DTYPE_NAMES.items()}
 
 
 def quantizer_config(quantizer: MultiStageQuantizer) -> dict[str, Any]:
@@ -57,68 +74,66 @@ def save_codebooks(quantizer: MultiStageQuantizer, path: str | os.PathLike[str])
     st = _safetensors()
     target = Path(path)
     tensors = {name: t.detach().cpu().contiguous().clone() for name, t in quantizer.state_dict().items()}
-    metadata = {"format": FILE_FORMAT, "version": FILE_VERSION, "config": json.dumps(quantizer.config())}
+    config = json.dumps(quantizer.config())
+    digest = checksum(config, ((name, _DTYPE_NAMES[t.dtype], tuple(t.shape), _raw(t)) for name, t in tensors.items()))
+    metadata = {"format": FILE_FORMAT, "version": FILE_VERSION, "config": config, "checksum": digest}
     with atomic_path(target) as tmp:
         st.save_file(tensors, str(tmp), metadata=metadata)
     return target
 
 
-def _read(path: Path) -> tuple[dict[str, torch.Tensor], dict[str, str]]:
-    from safetensors import safe_open
+def _raw(t: torch.Tensor) -> Any:
+    """The bytes of a contiguous CPU tensor, as safetensors writes them (little-endian)."""
+    return t.reshape(-1).view(torch.uint8).numpy()
 
-    with safe_open(str(path), framework="pt", device="cpu") as f:
-        metadata = f.metadata() or {}
-        tensors = {name: f.get_tensor(name) for name in f.keys()}
-    return tensors, metadata
+
+def _tensor(entry: Any) -> torch.Tensor:
+    dtype = _DTYPES[entry.dtype]
+    if len(entry.data) == 0:
+        return torch.empty(entry.shape, dtype=dtype)
+    return torch.frombuffer(bytearray(entry.data), dtype=dtype).reshape(entry.shape)
 
 
 def load_codebooks(path: str | os.PathLike[str]) -> MultiStageQuantizer:
     """Rebuild the quantizer saved by :func:`save_codebooks`, in eval mode.
 
-    Raises :class:`~rvqlayer.RvqlayerError` when ``path`` is missing or is not
-    a file written by :func:`save_codebooks`.
+    Nothing is allocated before the file has passed every check: the
+    safetensors header is parsed here (declared shapes and offsets against
+    the file's length), the options are bounded (``dim <= 65536``,
+    ``stages <= 1024``, ``entries <= 2**20``, the codewords must fit in the
+    file), the sha256 checksum of options and tensors is verified, and the
+    tensor names, shapes and dtypes are compared with those of a layer built
+    on the ``meta`` device (no memory). Version 1 files (no checksum) are
+    still read. Raises :class:`~rvqlayer.RvqlayerError` when ``path`` is
+    missing, damaged, or not a file written by :func:`save_codebooks`.
     """
-    _safetensors()
-    source = Path(path)
-    if not source.is_file():
-        raise fail("path", "an existing codebook file", f"{str(source)!r} (no such file)")
+    config, entries = read_codebook_file(path)
+    source = repr(str(path))
     what = "a codebook file written by save_codebooks"
-    try:
-        tensors, metadata = _read(source)
-    except Exception as exc:  # safetensors reports bad headers and short files in several ways
-        raise fail(
-            "path", what, f"{str(source)!r}, which is not a valid safetensors file ({type(exc).__name__})"
-        ) from None
-    if metadata.get("format") != FILE_FORMAT:
-        raise fail("path", what, f"{str(source)!r} with format {metadata.get('format')!r}")
-    if metadata.get("version") != FILE_VERSION:
-        raise fail("path", f"{what} (version {FILE_VERSION})", f"version {metadata.get('version')!r}")
-    try:
-        config = json.loads(metadata.get("config", ""))
-    except json.JSONDecodeError:
-        raise fail("path", what, f"{str(source)!r} with an unreadable config") from None
-    if not isinstance(config, dict) or "dim" not in config:
-        raise fail("path", what, f"{str(source)!r} with config {config!r}")
     options = dict(config)
     dim = options.pop("dim")
     try:
-        with torch.random.fork_rng(devices=[]):  # building draws codewords; keep the caller's random stream
-            quantizer = MultiStageQuantizer(dim, **options)
+        with torch.device("meta"):
+            expected = MultiStageQuantizer(dim, **options).state_dict()
     except (RvqlayerError, TypeError) as exc:
-        raise fail("path", what, f"{str(source)!r} with unusable options: {exc}") from None
-    expected = quantizer.state_dict()
-    if set(tensors) != set(expected):
-        missing = sorted(set(expected) - set(tensors))[:3]
-        extra = sorted(set(tensors) - set(expected))[:3]
-        raise fail("path", what, f"{str(source)!r} with missing tensors {missing} and unexpected {extra}")
-    for name, t in tensors.items():
-        if t.shape != expected[name].shape or t.dtype != expected[name].dtype:
+        raise fail("path", what, f"{source} with unusable options: {exc}") from None
+    if set(entries) != set(expected):
+        missing = sorted(set(expected) - set(entries))[:3]
+        extra = sorted(set(entries) - set(expected))[:3]
+        raise fail("path", what, f"{source} with missing tensors {missing} and unexpected {extra}")
+    for name, entry in entries.items():
+        want = expected[name]
+        if entry.shape != tuple(want.shape) or entry.dtype != _DTYPE_NAMES.get(want.dtype):
             raise fail(
                 f"path[{name!r}]",
-                f"a {expected[name].dtype} tensor of shape {tuple(expected[name].shape)}",
-                f"{t.dtype} of shape {tuple(t.shape)}",
+                f"a {want.dtype} tensor of shape {tuple(want.shape)}",
+                f"{entry.dtype} of shape {list(entry.shape)}",
             )
+    tensors = {name: _tensor(entry) for name, entry in entries.items()}
+    for name, t in tensors.items():
         if t.is_floating_point() and not bool(torch.isfinite(t).all()):
             raise fail(f"path[{name!r}]", "finite values", "NaN or Inf")
+    with torch.random.fork_rng(devices=[]):  # building draws codewords; keep the caller's random stream
+        quantizer = MultiStageQuantizer(dim, **options)
     quantizer.load_state_dict(tensors)
     return quantizer.eval()

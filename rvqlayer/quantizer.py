@@ -437,6 +437,35 @@ class MultiStageQuantizer(nn.Module):
         """
         return health_report(self.stage_statistics(codes), dead_below)
 
+    def truncated(self, stages: int) -> MultiStageQuantizer:
+        """An independent layer holding the first ``stages`` stages: a lower-bitrate model.
+
+        Codebooks, their statistics, the per-stage health figures and the
+        projections are copied (same dtypes and device); ``config()["stages"]``
+        is ``stages``, every other option is unchanged, and so is the training
+        mode. Its codes are the first ``stages`` codes of this layer's greedy
+        codes, and it saves and loads like any other layer.
+
+        >>> q = MultiStageQuantizer(4, stages=3, entries=8, init="random")
+        >>> small = q.truncated(stages=2)
+        >>> small.stages, torch.equal(small.codebooks[1].codewords, q.codebooks[1].codewords)
+        (2, True)
+        """
+        keep = check_int("stages", stages, 1, self.stages)
+        options = self.config()
+        options["stages"] = keep
+        with torch.device("meta"):
+            small = MultiStageQuantizer(**options)
+        state = {}
+        for name, t in self.state_dict().items():
+            if name.startswith("codebooks.") and int(name.split(".")[1]) >= keep:
+                continue
+            if name in ("energy_left", "stage_error", "stats_steps"):
+                t = t[:keep]
+            state[name] = t.detach().clone()
+        small.load_state_dict(state, assign=True)
+        return small.train(self.training)
+
     # ----------------------------------------------------------------- bitrate
     def bits_per_vector(self, stages: int | None = None) -> float:
         """Fixed-length bits per vector with the first ``stages`` codebooks."""

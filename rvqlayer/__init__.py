@@ -2,16 +2,26 @@
 
 Core imports need only torch, numpy and einops; the Lightning callback lives
 in :mod:`rvqlayer.callbacks` and is imported on demand.
+
+Where torch is not installed, ``import rvqlayer`` still works and offers
+``RvqlayerError`` and the numpy-only modules :mod:`rvqlayer.runtime` (encode
+and decode an exported quantizer) and :mod:`rvqlayer.stream` (bitstreams);
+the torch layer and its helpers are imported only when torch is present.
 """
 
-from ._checks import RvqlayerError
-from .bitrate import bitrate, bits_per_vector
-from .codebook import Codebook
-from .export import load_codebooks, save_codebooks
-from .health import HealthReport, StageHealth
-from .kmeans import KMeansResult, fit_kmeans
-from .quantizer import MultiStageQuantizer, QuantizerOutput
-from .search import beam_encode, nearest_code
+from ._errors import RvqlayerError
+
+try:
+    from .bitrate import bitrate, bits_per_vector
+    from .codebook import Codebook
+    from .export import load_codebooks, save_codebooks
+    from .health import HealthReport, StageHealth
+    from .kmeans import KMeansResult, fit_kmeans
+    from .quantizer import MultiStageQuantizer, QuantizerOutput
+    from .search import beam_encode, nearest_code
+except ModuleNotFoundError as exc:  # torch absent: the numpy-only modules still import
+    if exc.name != "torch":
+        raise
 
 __all__ = [
     "Codebook",

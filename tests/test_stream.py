@@ -8,6 +8,7 @@ import zlib
 import numpy as np
 import pytest
 import torch
+from _torchless import TORCH_BLOCKER
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -216,19 +217,6 @@ def test_bad_arguments_are_named(kwargs, match):
     codes = args.pop("codes")
     with pytest.raises(RvqlayerError, match=match):
         S.write_stream(codes, **args)
-
-
-TORCH_BLOCKER = """
-import sys
-
-class _NoTorch:
-    def find_spec(self, name, path=None, target=None):
-        if name == "torch" or name.startswith("torch."):
-            raise ModuleNotFoundError("No module named 'torch' (blocked by the test)", name="torch")
-        return None
-
-sys.meta_path.insert(0, _NoTorch())
-"""
 
 
 def test_stream_works_where_torch_cannot_be_imported():

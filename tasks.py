@@ -38,7 +38,7 @@ def setup() -> Path:
     py = _python()
     _run(py, "-m", "pip", "install", "--quiet", "--upgrade", "pip")
     _run(py, "-m", "pip", "install", "--quiet", TORCH)
-    _run(py, "-m", "pip", "install", "--quiet", "-e", f"{ROOT}[recipes,test]")
+    _run(py, "-m", "pip", "install", "--quiet", "-e", f"{ROOT}[recipes,export,test]")
     return py
 
 

@@ -126,7 +126,8 @@ class Codebook(nn.Module):
     # ------------------------------------------------------------------ lookup
     def lookup(self, codes: torch.Tensor) -> torch.Tensor:
         """Codewords ``[..., code_dim]`` (float32) for int64 ``codes`` ``[...]``."""
-        if codes.numel() and (int(codes.min()) < 0 or int(codes.max()) >= self.entries):
+        traced = torch.compiler.is_compiling()  # value-reading checks are for eager callers only
+        if not traced and codes.numel() and (int(codes.min()) < 0 or int(codes.max()) >= self.entries):
             raise fail("codes", f"in [0, {self.entries - 1}]", f"values in [{int(codes.min())}, {int(codes.max())}]")
         return F.embedding(codes, self.codewords.float())
 

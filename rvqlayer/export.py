@@ -137,3 +137,99 @@ def load_codebooks(path: str | os.PathLike[str]) -> MultiStageQuantizer:
         quantizer = MultiStageQuantizer(dim, **options)
     quantizer.load_state_dict(tensors)
     return quantizer.eval()
+
+
+# ------------------------------------------------------------------ graphs (torch.export, ONNX)
+class _EncodeGraph(torch.nn.Module):
+    def __init__(self, quantizer: MultiStageQuantizer, stages: int | None) -> None:
+        super().__init__()
+        self.quantizer = quantizer
+        self.stages = stages
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return self.quantizer.encode(x, stages=self.stages)
+
+
+class _DecodeGraph(torch.nn.Module):
+    def __init__(self, quantizer: MultiStageQuantizer) -> None:
+        super().__init__()
+        self.quantizer = quantizer
+
+    def forward(self, codes: torch.Tensor) -> torch.Tensor:
+        return self.quantizer.decode(codes)
+
+
+def example_input(quantizer: MultiStageQuantizer) -> torch.Tensor:
+    """A small float32 input of the layer's layout: ``dim`` on ``axis``, 4 (then 5, ...) elsewhere.
+
+    ``[n, dim]`` for ``axis=-1``; ``[batch, dim, time]`` for ``axis=1``; in
+    general one axis after a non-negative ``axis`` and one before a negative one.
+    """
+    axis = quantizer.axis
+    rank = max(2, axis + 2 if axis >= 0 else 1 - axis)
+    shape = [4 + i for i in range(rank)]
+    shape[axis] = quantizer.dim
+    return torch.randn(shape, generator=torch.Generator().manual_seed(0))
+
+
+def export_graphs(
+    quantizer: MultiStageQuantizer, stages: int | None = None, example: torch.Tensor | None = None
+) -> tuple[torch.export.ExportedProgram, torch.export.ExportedProgram]:
+    """``torch.export`` programs of the eval-mode ``encode`` (greedy) and ``decode`` of ``quantizer``.
+
+    Args:
+        stages: codes per vector (default: all stages).
+        example: an input of the layout the graphs take (default
+            :func:`example_input`); every axis but the feature axis is dynamic.
+
+    Returns ``(encode_program, decode_program)``: encode maps ``x`` to int64
+    codes ``[..., stages]``, decode maps such codes back to float32 vectors.
+    The layer's value-reading input checks (NaN/Inf, code range) run in eager
+    mode only; a traced graph does not check its input.
+    """
+    if not isinstance(quantizer, MultiStageQuantizer):
+        raise fail("quantizer", "a MultiStageQuantizer", type(quantizer).__name__)
+    n_use = quantizer._check_stages(stages)
+    x = example_input(quantizer) if example is None else example
+    quantizer = quantizer.eval()
+    feature = quantizer._axis(x.ndim)
+    dynamic = torch.export.Dim.DYNAMIC
+    x_dims = {i: dynamic for i in range(x.ndim) if i != feature}
+    encoder = _EncodeGraph(quantizer, n_use)
+    encode = torch.export.export(encoder, (x,), dynamic_shapes=({**x_dims},))
+    codes = quantizer.encode(x, stages=n_use)
+    codes_dims = {i: dynamic for i in range(codes.ndim - 1)}
+    decode = torch.export.export(_DecodeGraph(quantizer), (codes,), dynamic_shapes=(codes_dims,))
+    return encode, decode
+
+
+def export_onnx(
+    quantizer: MultiStageQuantizer,
+    prefix: str | os.PathLike[str],
+    stages: int | None = None,
+    example: torch.Tensor | None = None,
+) -> tuple[Path, Path]:
+    """Write ``<prefix>.encode.onnx`` and ``<prefix>.decode.onnx`` (needs the ``export`` extra).
+
+    The graphs are those of :func:`export_graphs` (inputs ``x`` and
+    ``codes``, outputs ``codes`` and ``y``), converted by torch's ONNX
+    exporter; every axis but the feature axis (and the stage axis of the
+    codes) is dynamic. Returns the two paths.
+    """
+    try:
+        import onnx  # noqa: F401
+        import onnxscript  # noqa: F401
+    except ImportError as exc:  # pragma: no cover - the extra is installed in the project's venv
+        raise ImportError("ONNX export needs onnx and onnxscript: pip install 'rvqlayer[export]'") from exc
+    encode, decode = export_graphs(quantizer, stages, example)
+    base = Path(prefix)
+    paths = []
+    for program, kind, names in ((encode, "encode", (["x"], ["codes"])), (decode, "decode", (["codes"], ["y"]))):
+        target = base.with_name(f"{base.name}.{kind}.onnx")
+        onnx_program = torch.onnx.export(
+            program, input_names=names[0], output_names=names[1], dynamo=True, verbose=False
+        )
+        with atomic_path(target) as tmp:
+            onnx_program.save(str(tmp))
+        paths.append(target)
+    return paths[0], paths[1]

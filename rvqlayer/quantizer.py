@@ -218,12 +218,16 @@ class MultiStageQuantizer(nn.Module):
 
     def _flatten(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Size]:
         """``[..., dim]`` rows of ``x`` and the vector shape (``x`` without its feature axis)."""
-        moved = x.movedim(self.axis, -1)
+        moved = x.movedim(self._axis(x.ndim), x.ndim - 1)
         return rearrange(moved, "... d -> (...) d"), moved.shape[:-1]
 
     def _unflatten(self, rows: torch.Tensor, lead: torch.Size) -> torch.Tensor:
         out = rows.reshape(*lead, self.dim)
-        return out.movedim(-1, self.axis) if out.ndim > 1 else out
+        return out.movedim(out.ndim - 1, self._axis(out.ndim)) if out.ndim > 1 else out
+
+    def _axis(self, ndim: int) -> int:
+        """The feature axis as a non-negative index (exported ONNX graphs reject negative ones)."""
+        return self.axis + ndim if self.axis < 0 else self.axis
 
     def _stage_counts(self, lead: torch.Size, n_use: int, device: torch.device) -> torch.Tensor:
         """Stages used per vector ``[...]``: per example (first axis) under stage dropout."""
@@ -378,7 +382,8 @@ class MultiStageQuantizer(nn.Module):
         needed = self.axis + 1 if self.axis >= 0 else -self.axis
         if codes.ndim < needed:
             raise fail("codes", f"at least {needed} dimensions for axis={self.axis}", f"shape {tuple(codes.shape)}")
-        if codes.numel() and (int(codes.min()) < -1 or int(codes.max()) >= self.entries):
+        traced = torch.compiler.is_compiling()  # value-reading checks are for eager callers only
+        if not traced and codes.numel() and (int(codes.min()) < -1 or int(codes.max()) >= self.entries):
             raise fail(
                 "codes",
                 f"in [0, {self.entries - 1}] (or -1 for a skipped stage)",

@@ -41,26 +41,33 @@ def nearest_code(
     [0, 1]
     """
     n = x.shape[0]
-    codes = torch.empty(n, dtype=torch.int64, device=x.device)
-    dist = torch.empty(n, dtype=torch.float32, device=x.device)
     with _no_autocast(x.device), torch.no_grad():
         c = codewords.detach().float()
+        c_sq = None
         if metric == "cosine":
             c = torch.nn.functional.normalize(c, dim=-1)
         else:
             c_sq = (c * c).sum(-1)
+        if torch.compiler.is_compiling():  # a traced graph takes every row in one block (shapes may be symbolic)
+            return _nearest_block(x.detach().float(), c, c_sq)
+        codes = torch.empty(n, dtype=torch.int64, device=x.device)
+        dist = torch.empty(n, dtype=torch.float32, device=x.device)
         for start in range(0, n, chunk):
-            block = x[start : start + chunk].detach().float()
-            if metric == "cosine":
-                sim = torch.nn.functional.normalize(block, dim=-1) @ c.T
-                best, idx = sim.max(-1)
-                dist[start : start + chunk] = 1.0 - best
-            else:
-                d = torch.addmm(c_sq, block, c.T, alpha=-2.0)
-                best, idx = d.min(-1)
-                dist[start : start + chunk] = (best + (block * block).sum(-1)).clamp_min_(0.0)
+            idx, d = _nearest_block(x[start : start + chunk].detach().float(), c, c_sq)
             codes[start : start + chunk] = idx
+            dist[start : start + chunk] = d
     return codes, dist
+
+
+def _nearest_block(
+    block: torch.Tensor, c: torch.Tensor, c_sq: torch.Tensor | None
+) -> tuple[torch.Tensor, torch.Tensor]:
+    """Codes and distances of one block; ``c_sq`` is None for cosine (``c`` then normalised)."""
+    if c_sq is None:
+        best, idx = (torch.nn.functional.normalize(block, dim=-1) @ c.T).max(-1)
+        return idx, 1.0 - best
+    best, idx = torch.addmm(c_sq, block, c.T, alpha=-2.0).min(-1)
+    return idx, (best + (block * block).sum(-1)).clamp_min_(0.0)
 
 
 def beam_encode(

@@ -31,6 +31,7 @@ from ._errors import RvqlayerError, fail
 
 __all__ = [
     "FIXED",
+    "REPEATS",
     "STREAM_VERSION",
     "TABLES",
     "StreamHeader",
@@ -47,7 +48,7 @@ __all__ = [
 
 MAGIC = b"RVQC"
 STREAM_VERSION = 1
-FIXED, TABLES = 0, 1  # coding modes
+FIXED, TABLES, REPEATS = 0, 1, 2  # coding modes: fixed length, static tables, static tables + repeat context
 MAX_STAGES = 1024
 MAX_ENTRIES = 2**20
 MAX_PACKET_FRAMES = 65535
@@ -157,10 +158,18 @@ class UsageTables:
             makes encoder and decoder agree on every machine.
         fingerprint: 16 bytes naming the codebooks the tables belong to
             (zeros when made from codes alone).
+        repeats: None, or int64 ``[stages, 2]``: how often a stage's code
+            differs from / equals the same stage's code in the previous
+            frame (each at least 1, rows summing to at most ``2**16``). With
+            it, the stream uses the repeat context (mode 2): for each frame
+            whose previous frame has that stage, one binary "same as the
+            previous frame" symbol, and the static table only for codes
+            that are not repeats.
     """
 
     frequencies: np.ndarray
     fingerprint: bytes = bytes(16)
+    repeats: np.ndarray | None = None
     _models: list[Any] | None = field(default=None, init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
@@ -172,6 +181,13 @@ class UsageTables:
         if not isinstance(self.fingerprint, bytes) or len(self.fingerprint) != 16:
             raise fail("fingerprint", "16 bytes", repr(self.fingerprint)[:40])
         self.frequencies = f.astype(np.int64)
+        if self.repeats is not None:
+            r = np.asarray(self.repeats)
+            if r.shape != (f.shape[0], 2) or r.dtype.kind not in "iu" or r.min() < 1 or (r.sum(1) > 2**16).any():
+                raise fail(
+                    "repeats", f"None or integers >= 1 of shape [{f.shape[0]}, 2], rows <= 2**16", "other values"
+                )
+            self.repeats = r.astype(np.int64)
 
     @property
     def stages(self) -> int:
@@ -207,11 +223,35 @@ class UsageTables:
         return cls.from_counts(counts, codebook_fingerprint(quantizer))
 
     @classmethod
-    def from_codes(cls, codes: Any, entries: int, fingerprint: bytes = bytes(16)) -> UsageTables:
-        """Tables from how often each code occurs in ``codes`` ``[..., stages]`` (``-1`` ignored)."""
+    def from_codes(cls, codes: Any, entries: int, fingerprint: bytes = bytes(16), repeats: bool = False) -> UsageTables:
+        """Tables from how often each code occurs in ``codes`` ``[..., stages]`` (``-1`` ignored).
+
+        ``repeats=True`` also fits the repeat context (see :meth:`with_repeats`).
+        """
         flat = _check_codes(codes, entries)
         counts = np.stack([np.bincount(col[col >= 0], minlength=entries) for col in flat.T])
-        return cls.from_counts(counts, fingerprint)
+        tables = cls.from_counts(counts, fingerprint)
+        return tables.with_repeats(codes) if repeats else tables
+
+    def with_repeats(self, codes: Any) -> UsageTables:
+        """These tables plus the repeat context fitted on ``codes`` ``[..., frames, stages]`` in time order.
+
+        Per stage, the shares of frames whose code equals / differs from the
+        previous frame's (pairs across the last axis but one; ``-1`` ignored),
+        quantised to integers summing to at most ``2**16``.
+        """
+        array = np.asarray(codes)
+        _check_codes(array, self.entries)
+        if array.ndim < 2 or array.shape[-1] > self.stages:
+            raise fail("codes", f"of shape [..., frames, stages <= {self.stages}]", f"shape {array.shape}")
+        cur, prev = array[..., 1:, :], array[..., :-1, :]
+        both = (cur >= 0) & (prev >= 0)
+        same = ((cur == prev) & both).reshape(-1, array.shape[-1]).sum(0)
+        pairs = both.reshape(-1, array.shape[-1]).sum(0)
+        share = np.full(self.stages, 0.5)
+        share[: array.shape[-1]] = np.where(pairs > 0, same / np.maximum(pairs, 1), 0.5)
+        hit = 1 + np.floor(share * (2**16 - 2)).astype(np.int64)
+        return UsageTables(self.frequencies, self.fingerprint, np.stack([2**16 - hit, hit], axis=1))
 
     def checksum(self) -> bytes:
         """16 bytes of sha256 over the tables' shape, integers and fingerprint."""
@@ -219,6 +259,8 @@ class UsageTables:
         digest.update(struct.pack("<II", self.stages, self.entries))
         digest.update(self.frequencies.astype("<i8").tobytes())
         digest.update(self.fingerprint)
+        if self.repeats is not None:
+            digest.update(b"repeats" + self.repeats.astype("<i8").tobytes())
         return digest.digest()[:16]
 
     def bits(self, codes: Any) -> float:
@@ -231,9 +273,17 @@ class UsageTables:
             total -= float(logp[s, col[col >= 0]].sum())
         return total
 
+    def _repeat_model(self, stage: int) -> Any:
+        if self._models is None:
+            self._models = [None] * (2 * self.stages)
+        if self._models[self.stages + stage] is None:
+            r = self.repeats[stage].astype(np.float64)  # type: ignore[index]
+            self._models[self.stages + stage] = _coder().model.Categorical(r / r.sum(), perfect=False)
+        return self._models[self.stages + stage]
+
     def _model(self, stage: int) -> Any:
         if self._models is None:
-            self._models = [None] * self.stages
+            self._models = [None] * (2 * self.stages)
         if self._models[stage] is None:
             f = self.frequencies[stage].astype(np.float64)
             self._models[stage] = _coder().model.Categorical(f / f.sum(), perfect=False)
@@ -316,7 +366,7 @@ def write_stream(
                 f"tables for {entries} entries and at least {stages} stages",
                 f"{tables.entries} entries, {tables.stages} stages",
             )
-        mode, check = TABLES, tables.checksum()
+        mode, check = (TABLES if tables.repeats is None else REPEATS), tables.checksum()
     else:
         if fingerprint is not None and (not isinstance(fingerprint, bytes) or len(fingerprint) != 16):
             raise fail("fingerprint", "16 bytes or None", repr(fingerprint)[:40])
@@ -334,7 +384,7 @@ def write_stream(
         if mode == FIXED:
             payload.append(pack_codes(block[present], bits))
         else:
-            payload.append(_entropy_encode(block, present, tables))  # type: ignore[arg-type]
+            payload.append(_entropy_encode(block, present, tables, mode == REPEATS))  # type: ignore[arg-type]
         body = b"".join(payload)
         fields = _PACKET.pack(block.shape[0], flags, len(body), 0)[:7]
         parts.append(_PACKET.pack(block.shape[0], flags, len(body), zlib.crc32(body, zlib.crc32(fields))))
@@ -343,25 +393,52 @@ def write_stream(
     return b"".join(parts)
 
 
-def _entropy_encode(block: np.ndarray, present: np.ndarray, tables: UsageTables) -> bytes:
+def _repeat_slots(present: np.ndarray) -> np.ndarray:
+    """Bool ``[frames]``: frames of one stage that carry a repeat symbol (this and the previous frame present)."""
+    slots = np.zeros_like(present)
+    slots[1:] = present[1:] & present[:-1]
+    return slots
+
+
+def _entropy_encode(block: np.ndarray, present: np.ndarray, tables: UsageTables, repeats: bool) -> bytes:
     encoder = _coder().queue.RangeEncoder()
     for s in range(block.shape[1]):
-        column = block[present[:, s], s].astype(np.int32)
+        keep = present[:, s]
+        if repeats:
+            slots = _repeat_slots(keep)
+            same = np.zeros_like(keep)
+            same[1:] = block[1:, s] == block[:-1, s]
+            same &= slots
+            if slots.any():
+                encoder.encode(same[slots].astype(np.int32), tables._repeat_model(s))
+            keep = keep & ~same
+        column = block[keep, s].astype(np.int32)
         if column.size and tables.entries > 1:  # one entry: every code is 0 and costs nothing
             encoder.encode(column, tables._model(s))
     return encoder.get_compressed().astype("<u4").tobytes()
 
 
-def _entropy_decode(body: memoryview, present: np.ndarray, tables: UsageTables) -> np.ndarray:
+def _entropy_decode(body: memoryview, present: np.ndarray, tables: UsageTables, repeats: bool) -> np.ndarray:
     if len(body) % 4:
         raise fail("stream (packet payload)", "a whole number of 32-bit words", f"{len(body)} bytes")
     words = np.frombuffer(body, dtype="<u4").astype(np.uint32)
     decoder = _coder().queue.RangeDecoder(words)
     out = np.full(present.shape, -1, dtype=np.int64)
+    frames = np.arange(present.shape[0])
     for s in range(present.shape[1]):
-        count = int(present[:, s].sum())
+        keep = present[:, s]
+        same = np.zeros_like(keep)
+        if repeats:
+            slots = _repeat_slots(keep)
+            if slots.any():
+                same[slots] = decoder.decode(tables._repeat_model(s), int(slots.sum())).astype(bool)
+            keep = keep & ~same
+        count = int(keep.sum())
         if count:
-            out[present[:, s], s] = decoder.decode(tables._model(s), count) if tables.entries > 1 else 0
+            out[keep, s] = decoder.decode(tables._model(s), count) if tables.entries > 1 else 0
+        if same.any():  # a repeat takes the code of the last frame before it that is not a repeat
+            source = np.maximum.accumulate(np.where(same, 0, frames))
+            out[:, s] = np.where(same, out[source, s], out[:, s])
     return out
 
 
@@ -377,8 +454,8 @@ def read_header(blob: bytes | memoryview) -> StreamHeader:
         raise fail("stream (version)", f"{STREAM_VERSION}", f"{version} (a stream this version cannot read)")
     if _HEADER_CRC.unpack_from(view, _HEADER.size)[0] != zlib.crc32(view[: _HEADER.size]):
         raise fail("stream (header checksum)", "the crc32 of the header", "another value (a damaged header)")
-    if mode not in (FIXED, TABLES) or reserved != 0:
-        raise fail("stream (mode)", f"{FIXED} (fixed) or {TABLES} (tables)", mode)
+    if mode not in (FIXED, TABLES, REPEATS) or reserved != 0:
+        raise fail("stream (mode)", f"{FIXED} (fixed), {TABLES} (tables) or {REPEATS} (repeats)", mode)
     if not 1 <= stages <= MAX_STAGES:
         raise fail("stream (stages)", f"in [1, {MAX_STAGES}]", stages)
     if not 1 <= entries <= MAX_ENTRIES:
@@ -389,7 +466,7 @@ def read_header(blob: bytes | memoryview) -> StreamHeader:
 
 
 def _check_reader(header: StreamHeader, tables: UsageTables | None, fingerprint: bytes | None) -> None:
-    if header.mode == TABLES:
+    if header.mode in (TABLES, REPEATS):
         if tables is None:
             raise fail("tables", "the UsageTables the stream was entropy-coded with", "None")
         if tables.checksum() != header.checksum:
@@ -447,7 +524,7 @@ def read_packet(
             out = np.full(shape, -1, dtype=np.int64)
             out[present] = unpack_codes(rest, bits, count)
         else:
-            out = _entropy_decode(rest, present, tables)  # type: ignore[arg-type]
+            out = _entropy_decode(rest, present, tables, header.mode == REPEATS)  # type: ignore[arg-type]
     except RvqlayerError:
         raise
     except Exception as exc:  # the coder's own complaint about words it cannot decode

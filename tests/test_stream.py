@@ -46,6 +46,10 @@ def test_fixed_and_entropy_round_trips_are_exact(case):
     tables = S.UsageTables.from_codes(codes, entries)
     coded = S.write_stream(codes, entries=entries, frame_rate=50.0, tables=tables, packet_frames=packet)
     assert np.array_equal(S.read_stream(coded, tables=tables), flat)
+    context = tables.with_repeats(codes.reshape(-1, codes.shape[-1]))
+    coded = S.write_stream(codes, entries=entries, frame_rate=50.0, tables=context, packet_frames=packet)
+    assert S.read_header(coded).mode == S.REPEATS
+    assert np.array_equal(S.read_stream(coded, tables=context), flat)
 
 
 def test_empty_input_round_trips():
@@ -112,7 +116,9 @@ def _blob(mode="fixed"):
     rng = np.random.default_rng(3)
     codes = rng.integers(0, 64, (300, 4))
     codes[5, 2:] = -1
-    tables = S.UsageTables.from_codes(codes, 64) if mode == "tables" else None
+    tables = S.UsageTables.from_codes(codes, 64, repeats=mode == "repeats") if mode != "fixed" else None
+    if mode == "repeats":
+        codes[100:140] = codes[99]  # runs of repeats
     return S.write_stream(codes, entries=64, frame_rate=75.0, tables=tables, packet_frames=50), tables, codes
 
 
@@ -162,7 +168,7 @@ def test_bad_header_fields_are_named(fields, match):
 
 
 def test_every_truncation_is_an_error():
-    for mode in ("fixed", "tables"):
+    for mode in ("fixed", "tables", "repeats"):
         blob, tables, _ = _blob(mode)
         for cut in range(len(blob)):
             with pytest.raises(RvqlayerError, match="stream"):
@@ -172,7 +178,7 @@ def test_every_truncation_is_an_error():
 
 
 def test_every_bit_flip_is_an_error_or_harmless():
-    for mode in ("fixed", "tables"):
+    for mode in ("fixed", "tables", "repeats"):
         blob, tables, codes = _blob(mode)
         rng = np.random.default_rng(4)
         for bit in rng.choice(len(blob) * 8, 400, replace=False):
@@ -238,3 +244,23 @@ def test_stream_works_where_torch_cannot_be_imported():
     )
     out = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True, text=True)
     assert out.stdout.strip() == "blocked"
+
+
+def test_repeat_context_codes_runs_in_fewer_bytes_and_fits_shares():
+    rng = np.random.default_rng(5)
+    fresh = rng.integers(0, 256, (4000, 2))
+    keep = rng.random((4000, 2)) < 0.6  # a code repeats the previous frame's with probability 0.6
+    codes = fresh.copy()
+    for t in range(1, 4000):
+        codes[t] = np.where(keep[t], codes[t - 1], fresh[t])
+    static = S.UsageTables.from_codes(codes, 256)
+    context = static.with_repeats(codes)
+    shares = context.repeats[:, 1] / context.repeats.sum(1)
+    expected = (codes[1:] == codes[:-1]).mean(0)
+    np.testing.assert_allclose(shares, expected, atol=1e-4)
+    plain = S.write_stream(codes, entries=256, frame_rate=75.0, tables=static)
+    better = S.write_stream(codes, entries=256, frame_rate=75.0, tables=context)
+    assert len(better) < 0.7 * len(plain)
+    assert context.checksum() != static.checksum()
+    with pytest.raises(RvqlayerError, match="other tables"):
+        S.read_stream(better, tables=static)

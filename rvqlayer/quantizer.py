@@ -459,7 +459,7 @@ class MultiStageQuantizer(nn.Module):
         keep = check_int("stages", stages, 1, self.stages)
         options = self.config()
         options["stages"] = keep
-        with torch.device("meta"):
+        with torch.random.fork_rng(devices=[]):  # building draws codewords; keep the caller's random stream
             small = MultiStageQuantizer(**options)
         state = {}
         for name, t in self.state_dict().items():
@@ -488,7 +488,7 @@ def _finite_lookup_input(z: torch.Tensor) -> torch.Tensor:
     distances between them would (norm above ``MAX_LOOKUP_NORM``).
     """
     lookup = z.float()
-    if lookup.numel():
+    if lookup.numel() and not torch.compiler.is_compiling():  # value-reading checks are for eager callers only
         if not bool(torch.isfinite(lookup).all()):
             bad = int((~torch.isfinite(lookup)).sum())
             raise fail("x", "finite in float32 after the input projection", f"{bad} non-finite values")

@@ -218,8 +218,11 @@ class UsageTables:
 
     @classmethod
     def from_quantizer(cls, quantizer: Any) -> UsageTables:
-        """Tables from a layer's moving-average usage counts (``ema_count`` of each stage)."""
-        counts = np.stack([cb.ema_count.detach().float().cpu().numpy() for cb in quantizer.codebooks])
+        """Tables from a layer's moving-average usage counts (``usage_count`` of each stage: the
+        assignments actually made; ``ema_count`` for layers without it)."""
+        counts = np.stack(
+            [getattr(cb, "usage_count", cb.ema_count).detach().float().cpu().numpy() for cb in quantizer.codebooks]
+        )
         return cls.from_counts(counts, codebook_fingerprint(quantizer))
 
     @classmethod

@@ -92,7 +92,7 @@ def test_entropy_coded_size_is_close_to_the_cross_entropy():
 def test_tables_from_a_quantizer_use_its_counts_and_fingerprint():
     torch.manual_seed(0)
     q = MultiStageQuantizer(4, stages=3, entries=8, init="random")
-    q.codebooks[1].ema_count.copy_(torch.arange(8.0))
+    q.codebooks[1].usage_count.copy_(torch.arange(8.0))
     tables = S.UsageTables.from_quantizer(q)
     assert tables.frequencies.shape == (3, 8)
     assert tables.frequencies[1, 0] == 1 and np.all(np.diff(tables.frequencies[1]) > 0)

@@ -61,7 +61,9 @@ class QuantizerRuntime:
             raise fail("path (option metric)", "'l2' or 'cosine'", repr(self.metric))
         if isinstance(self.axis, bool) or not isinstance(self.axis, int):
             raise fail("path (option axis)", "an int", repr(self.axis))
-        self.chunk = int(config.get("chunk", 4096))
+        self.chunk = config.get("chunk", 4096)
+        if isinstance(self.chunk, bool) or not isinstance(self.chunk, int) or not 1 <= self.chunk <= 2**31:
+            raise fail("path (option chunk)", "an int in [1, 2**31]", repr(self.chunk))
         missing = [f"codebooks.{s}.codewords" for s in range(self.stages) if f"codebooks.{s}.codewords" not in tensors]
         if missing:
             raise fail("path", "a file with every stage's codewords", f"missing {missing[:3]}")

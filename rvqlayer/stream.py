@@ -52,6 +52,7 @@ FIXED, TABLES, REPEATS = 0, 1, 2  # coding modes: fixed length, static tables, s
 MAX_STAGES = 1024
 MAX_ENTRIES = 2**20
 MAX_PACKET_FRAMES = 65535
+MAX_PACKET_CODES = 2**22  # frames * stages per packet: bounds what a reader allocates for one packet
 _HEADER = struct.Struct("<4sHBBII d16s")  # magic, version, mode, reserved, stages, entries, frame_rate, checksum
 _HEADER_CRC = struct.Struct("<I")
 _PACKET = struct.Struct("<HBII")  # frames, flags, payload length, crc32 of the first 7 bytes and the payload
@@ -352,6 +353,7 @@ def write_stream(
         raise fail("entries", f"an int in [1, {MAX_ENTRIES}]", repr(entries))
     if isinstance(frame_rate, bool) or not isinstance(frame_rate, (int, float)) or not 0 < frame_rate < math.inf:
         raise fail("frame_rate", "a finite number > 0", repr(frame_rate))
+    packet_frames_given = packet_frames is not None
     if packet_frames is None:
         packet_frames = min(max(1, round(frame_rate)), MAX_PACKET_FRAMES)
     if isinstance(packet_frames, bool) or not isinstance(packet_frames, int):
@@ -360,6 +362,10 @@ def write_stream(
         raise fail("packet_frames", f"an int in [1, {MAX_PACKET_FRAMES}]", packet_frames)
     flat = _check_codes(codes, entries)
     stages = flat.shape[1]
+    if packet_frames * stages > MAX_PACKET_CODES:
+        if packet_frames_given:
+            raise fail("packet_frames", f"at most {MAX_PACKET_CODES // stages} for {stages} stages", packet_frames)
+        packet_frames = MAX_PACKET_CODES // stages
     if tables is not None:
         if not isinstance(tables, UsageTables):
             raise fail("tables", "UsageTables or None", type(tables).__name__)
@@ -500,6 +506,8 @@ def read_packet(
         if flags or length or crc:
             raise fail(f"stream (packet at byte {offset})", "an end packet of zeros", "other values")
         return None, start
+    if frames * header.stages > MAX_PACKET_CODES:
+        raise fail(f"stream (packet frames at byte {offset})", f"at most {MAX_PACKET_CODES // header.stages}", frames)
     if flags & ~_SKIPS:
         raise fail(f"stream (packet flags at byte {offset})", "0 or 1", flags)
     if start + length > len(view):

@@ -94,3 +94,25 @@ def test_runtime_runs_where_torch_cannot_be_imported(tmp_path):
     codes = q.encode(x)
     assert np.array_equal(np.load(tmp_path / "codes.npy"), codes.numpy())
     np.testing.assert_allclose(np.load(tmp_path / "y.npy"), q.decode(codes).numpy(), atol=1e-5, rtol=0)
+
+
+@pytest.mark.parametrize("field, value", [("chunk", 0), ("chunk", "x"), ("metric", "l1"), ("axis", 1.5)])
+def test_runtime_rejects_crafted_options(tmp_path, field, value):
+    import json
+
+    from safetensors.torch import save_file
+
+    from rvqlayer._container import checksum
+
+    q = _layer(False)
+    tensors = {name: t.contiguous() for name, t in q.state_dict().items()}
+    config = json.dumps({**q.config(), field: value})
+    names = {torch.float32: "F32", torch.int64: "I64", torch.bool: "BOOL"}
+    digest = checksum(
+        config,
+        ((n, names[t.dtype], tuple(t.shape), t.reshape(-1).view(torch.uint8).numpy()) for n, t in tensors.items()),
+    )
+    meta = {"format": "rvqlayer-codebooks", "version": "2", "config": config, "checksum": digest}
+    save_file(tensors, str(tmp_path / "q.safetensors"), metadata=meta)
+    with pytest.raises(RvqlayerError, match=field):
+        load_runtime(tmp_path / "q.safetensors")

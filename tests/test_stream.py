@@ -264,3 +264,15 @@ def test_repeat_context_codes_runs_in_fewer_bytes_and_fits_shares():
     assert context.checksum() != static.checksum()
     with pytest.raises(RvqlayerError, match="other tables"):
         S.read_stream(better, tables=static)
+
+
+def test_a_crafted_packet_cannot_ask_for_a_huge_allocation():
+    blob = bytearray(S.write_stream(np.zeros((1, 1024), dtype=np.int64), entries=2, frame_rate=1.0))
+    body = b""
+    fields = struct.pack("<HBII", 65535, 0, len(body), 0)[:7]
+    packet = fields + struct.pack("<I", zlib.crc32(body, zlib.crc32(fields))) + body
+    crafted = bytes(blob[: S.HEADER_BYTES]) + packet + bytes(11)
+    with pytest.raises(RvqlayerError, match="packet frames"):
+        S.read_stream(crafted)
+    with pytest.raises(RvqlayerError, match="packet_frames"):
+        S.write_stream(np.zeros((2, 1024), dtype=np.int64), entries=2, frame_rate=1.0, packet_frames=65535)

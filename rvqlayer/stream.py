@@ -102,6 +102,25 @@ def pack_codes(values: np.ndarray, bits: int) -> bytes:
     return out[:, :bits].tobytes()[: -(-n * bits // 8)]
 
 
+def _pack_rows(values: np.ndarray, bits: int) -> np.ndarray:
+    """Each row of ``values`` ``[p, m]`` packed as :func:`pack_codes` would: uint8 ``[p, ceil(m * bits / 8)]``."""
+    p, m = values.shape
+    wide = -(-m // 8) * 8  # whole groups of 8 codes fill whole bytes, so rows stay byte-aligned
+    padded = np.zeros((p, wide), dtype=np.int64)
+    padded[:, :m] = values
+    packed = np.frombuffer(pack_codes(padded.reshape(-1), bits), dtype=np.uint8).reshape(p, wide * bits // 8)
+    return packed[:, : -(-m * bits // 8)]
+
+
+def _unpack_rows(rows: np.ndarray, bits: int, m: int) -> np.ndarray:
+    """The inverse of :func:`_pack_rows`: int64 ``[p, m]`` from uint8 ``rows`` ``[p, ceil(m * bits / 8)]``."""
+    p = rows.shape[0]
+    wide = -(-m // 8) * 8
+    padded = np.zeros((p, wide * bits // 8), dtype=np.uint8)
+    padded[:, : rows.shape[1]] = rows
+    return unpack_codes(padded.reshape(-1), bits, p * wide).reshape(p, wide)[:, :m]
+
+
 def unpack_codes(data: bytes | memoryview, bits: int, count: int) -> np.ndarray:
     """The ``count`` ints (int64 ``[count]``) that :func:`pack_codes` packed at ``bits`` bits into ``data``."""
     if not 0 <= bits <= 25:
@@ -383,7 +402,16 @@ def write_stream(
     head = _HEADER.pack(MAGIC, STREAM_VERSION, mode, 0, stages, entries, float(frame_rate), check)
     parts = [head, _HEADER_CRC.pack(zlib.crc32(head))]
     bits = code_bits(entries)
-    for start in range(0, flat.shape[0], packet_frames):
+    first = 0
+    if mode == FIXED and flat.size and (flat >= 0).all():  # no skipped stage: every full packet packed at once
+        first = flat.shape[0] // packet_frames * packet_frames
+        rows = _pack_rows(flat[:first].reshape(-1, packet_frames * stages), bits)
+        fields = _PACKET.pack(packet_frames, 0, rows.shape[1], 0)[:7]
+        seed = zlib.crc32(fields)
+        for row in rows:
+            parts.append(fields + _HEADER_CRC.pack(zlib.crc32(row, seed)))
+            parts.append(row.tobytes())
+    for start in range(first, flat.shape[0], packet_frames):
         block = flat[start : start + packet_frames]
         present = block >= 0
         flags, payload = 0, []
@@ -561,6 +589,46 @@ def iter_packets(
         raise fail("stream", f"{offset} bytes (ending with the end packet)", f"{len(blob)} bytes (trailing data)")
 
 
+def _read_fixed_uniform(view: memoryview, header: StreamHeader) -> np.ndarray | None:
+    """A fixed-length stream whose packets have no skipped stage and equal sizes, unpacked at once.
+
+    Returns None whenever anything is irregular; :func:`iter_packets` then
+    reads packet by packet and names what is wrong.
+    """
+    bits = code_bits(header.entries)
+    offset, packets = HEADER_BYTES, []
+    while offset + PACKET_HEADER_BYTES <= len(view):
+        frames, flags, length, crc = _PACKET.unpack_from(view, offset)
+        start = offset + PACKET_HEADER_BYTES
+        if frames == 0:
+            if flags or length or crc or start != len(view):
+                return None
+            break
+        count = frames * header.stages
+        if flags or count > MAX_PACKET_CODES or length != -(-count * bits // 8) or start + length > len(view):
+            return None
+        if zlib.crc32(view[start : start + length], zlib.crc32(view[offset : offset + 7])) != crc:
+            return None
+        packets.append((frames, start, length))
+        offset = start + length
+    else:
+        return None
+    if not packets:
+        return np.zeros((0, header.stages), dtype=np.int64)
+    frames, start, length = packets[0]
+    same = len(packets) if packets[-1][0] == frames else len(packets) - 1
+    if any(f != frames for f, _, _ in packets[:same]):
+        return None
+    stride = PACKET_HEADER_BYTES + length
+    table = np.frombuffer(view, dtype=np.uint8, count=same * stride, offset=start - PACKET_HEADER_BYTES)
+    payload = table.reshape(same, stride)[:, PACKET_HEADER_BYTES:]
+    parts = [_unpack_rows(payload, bits, frames * header.stages).reshape(-1, header.stages)]
+    if same < len(packets):
+        last, at, size = packets[-1]
+        parts.append(unpack_codes(view[at : at + size], bits, last * header.stages).reshape(last, header.stages))
+    return np.concatenate(parts)
+
+
 def read_stream(
     blob: bytes | memoryview, tables: UsageTables | None = None, fingerprint: bytes | None = None
 ) -> np.ndarray:
@@ -574,6 +642,11 @@ def read_stream(
     if not isinstance(blob, (bytes, bytearray, memoryview)):
         raise fail("stream", "bytes", type(blob).__name__)
     header = read_header(blob)
+    if header.mode == FIXED:
+        _check_reader(header, tables, fingerprint)
+        fast = _read_fixed_uniform(memoryview(blob), header)
+        if fast is not None:
+            return fast
     parts = list(iter_packets(blob, tables, fingerprint))
     if not parts:
         return np.zeros((0, header.stages), dtype=np.int64)

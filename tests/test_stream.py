@@ -276,3 +276,19 @@ def test_a_crafted_packet_cannot_ask_for_a_huge_allocation():
         S.read_stream(crafted)
     with pytest.raises(RvqlayerError, match="packet_frames"):
         S.write_stream(np.zeros((2, 1024), dtype=np.int64), entries=2, frame_rate=1.0, packet_frames=65535)
+
+
+@pytest.mark.parametrize("entries, stages, frames, packet", [(1000, 3, 101, 10), (2, 1, 17, 5), (65536, 8, 40, 40)])
+def test_fixed_packets_hold_exactly_the_packed_codes(entries, stages, frames, packet):
+    codes = np.random.default_rng(entries).integers(0, entries, (frames, stages))
+    blob = S.write_stream(codes, entries=entries, frame_rate=75.0, packet_frames=packet)
+    offset, start = S.HEADER_BYTES, 0
+    bits = S.code_bits(entries)
+    while True:
+        n, flags, length, _ = struct.unpack_from("<HBII", blob, offset)
+        if n == 0:
+            break
+        body = blob[offset + 11 : offset + 11 + length]
+        assert flags == 0 and body == S.pack_codes(codes[start : start + n].reshape(-1), bits)
+        offset, start = offset + 11 + length, start + n
+    assert start == frames and offset + 11 == len(blob)

@@ -173,11 +173,16 @@ def _mixture(seed: int, *, k: int = 12, dim: int = 4, n: int = 3000, spread: flo
     return centres[labels] + torch.randn(n, dim, generator=g)
 
 
+@pytest.mark.parametrize("path", ["exact", "summary"])
 @pytest.mark.parametrize("seed", [0, 1, 2, 3, 4])
 @pytest.mark.parametrize("k", [12, 24])
-def test_kmeans_init_matches_scikit_learn(k: int, seed: int) -> None:
+def test_kmeans_init_matches_scikit_learn(k: int, seed: int, path: str, monkeypatch: pytest.MonkeyPatch) -> None:
     # 12 components: k = 12 fails when a component is left without a code; k = 24 (two codes
     # per component) compares the quality of the local optimum each finds inside components.
+    # "summary" forces the path large fits take (seeding on a k-means|| summary, then Lloyd
+    # on all points); these 3000 points would otherwise be fitted exactly.
+    if path == "summary":
+        monkeypatch.setattr(rvqlayer.kmeans, "_SUMMARY_ABOVE", 0)
     x = _mixture(seed, k=12)
     x64 = x.double().numpy()
     # Reference: scikit-learn KMeans (k-means++ seeding, Arthur & Vassilvitskii, SODA 2007),

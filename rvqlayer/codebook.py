@@ -20,6 +20,11 @@ Update = Literal["ema", "gradient"]
 Init = Literal["kmeans", "random"]
 
 
+def same_subset(n: int, size: int, device: torch.device) -> torch.Tensor:
+    """``size`` distinct indices in ``[0, n)`` drawn on rank 0 and broadcast, so every rank takes the same rows."""
+    return _dist.broadcast(torch.randperm(n, device=device)[:size].contiguous())
+
+
 class Codebook(nn.Module):
     """A single stage of ``entries`` codewords of size ``code_dim``.
 
@@ -142,13 +147,15 @@ class Codebook(nn.Module):
         return codes, q
 
     def plan_step(
-        self, x: torch.Tensor, weight: torch.Tensor | None = None
+        self, x: torch.Tensor, weight: torch.Tensor | None = None, start: StepUpdate | None = None
     ) -> tuple[torch.Tensor, torch.Tensor, StepUpdate | None]:
         """Codes ``[n]``, codewords ``[n, code_dim]`` and, in training, the update not yet applied.
 
         Nothing in the module changes here; :meth:`commit_step` writes the
         update. The multi-stage layer plans every stage first and commits only
         when all stages succeeded, so a failing step changes no stage.
+        ``start`` is an update planned before (the multi-stage layer's k-means
+        fit of several batches); this step's learning is added to it.
         """
         if x.ndim != 2 or x.shape[1] != self.code_dim:
             raise fail("x", f"of shape [n, {self.code_dim}]", f"shape {tuple(x.shape)}")
@@ -157,8 +164,8 @@ class Codebook(nn.Module):
         if not self.training:
             codes, _ = self.search(x)
             return codes, F.embedding(codes, self.codewords.float()), None
-        update = StepUpdate()
-        if not bool(self.initialised):
+        update = StepUpdate() if start is None else start
+        if not bool(self.initialised) and "initialised" not in update.values:
             self._plan_init(x[weight], update)
         current = update.values.get("codewords", self.codewords.detach())
         codes, _ = nearest_code(x, current, metric=self.metric, chunk=self.chunk)
@@ -193,14 +200,33 @@ class Codebook(nn.Module):
         rows = _dist.gather_rows(x.detach().float())
         if rows.shape[0] == 0:
             return
-        used = rows
-        if rows.shape[0] > self.init_points:
-            used = rows[torch.randperm(rows.shape[0], device=rows.device)[: self.init_points]]
-        fit = fit_kmeans(
-            used, self.entries, iters=self.init_iters, restarts=self.init_restarts, metric=self.metric, chunk=self.chunk
-        )
-        centroids = _dist.broadcast(fit.centroids.contiguous())
-        counts = _dist.broadcast(fit.counts * (rows.shape[0] / used.shape[0])).to(self.ema_count)
+        total = rows.shape[0]
+        if total > self.init_points:
+            rows = rows[same_subset(total, self.init_points, rows.device)]
+        self.plan_fit(rows, float(total), update)
+
+    @torch.no_grad()
+    def plan_fit(self, rows: torch.Tensor, batch_rows: float, update: StepUpdate) -> None:
+        """Plan the k-means fit of ``rows`` ``[m, code_dim]`` (the same on every rank): fitted on rank 0, broadcast.
+
+        ``batch_rows`` (vectors per training batch, all ranks together) scales
+        the fitted counts to the scale of the EMA's per-batch counts.
+        """
+        if _dist.rank() == 0:
+            fit = fit_kmeans(
+                rows,
+                self.entries,
+                iters=self.init_iters,
+                restarts=self.init_restarts,
+                metric=self.metric,
+                chunk=self.chunk,
+            )
+            centroids, counts = fit.centroids.contiguous(), fit.counts * (batch_rows / rows.shape[0])
+        else:  # the other ranks receive rank 0's fit
+            centroids = rows.new_zeros(self.entries, self.code_dim)
+            counts = rows.new_zeros(self.entries)
+        centroids = _dist.broadcast(centroids)
+        counts = _dist.broadcast(counts).to(self.ema_count)
         update.values.update(codewords=centroids, ema_count=counts, usage_count=counts.clone())
         update.values["initialised"] = torch.ones((), dtype=torch.bool)
         if self.update == "ema":

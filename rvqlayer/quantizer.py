@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import json
 import math
 from dataclasses import dataclass
 from typing import Any
 
 import torch
+import torch.nn.functional as F
 from einops import rearrange
 from torch import nn
 
@@ -14,10 +16,10 @@ from . import distributed as _dist
 from ._checks import check_choice, check_features, check_float, check_int, check_mask, fail
 from .bitrate import bitrate as _bitrate
 from .bitrate import bits_per_vector as _bits_per_vector
-from .codebook import Codebook, Init, Update
+from .codebook import Codebook, Init, StepUpdate, Update, same_subset
 from .ema import moving_average_
 from .health import HealthReport, StageStatistics, health_report
-from .search import Metric, beam_encode
+from .search import Metric, beam_encode, nearest_code
 
 # Bounds that keep a layer (or a file that declares one) from exhausting memory.
 MAX_DIM = 2**16
@@ -68,6 +70,12 @@ class MultiStageQuantizer(nn.Module):
             residuals, or ``"random"`` at construction.
         init_iters, init_restarts, init_points: k-means settings (see
             :class:`Codebook`).
+        init_batches: k-means initialisation waits for this many training
+            batches (of all ranks) and fits them together, or fits as soon as
+            ``init_points`` vectors are collected. Until then the layer works
+            as it was built (codes of the random construction-time codewords,
+            ``quantized`` their sum, the loss against them) and learns
+            nothing; the collected vectors are kept in the state dict.
         reseed_below: dead-code threshold as a share of the uniform usage
             rate; 0 disables reseeding.
         stage_dropout: in training, the probability that an example keeps a
@@ -104,6 +112,7 @@ class MultiStageQuantizer(nn.Module):
         init_iters: int = 10,
         init_restarts: int = 3,
         init_points: int = 8192,
+        init_batches: int = 1,
         reseed_below: float = 0.03,
         stage_dropout: float = 0.0,
         metric: Metric = "l2",
@@ -129,6 +138,7 @@ class MultiStageQuantizer(nn.Module):
         self.metric = check_choice("metric", metric, ("l2", "cosine"))
         self.axis = check_int("axis", axis, -(2**31))
         self.chunk = check_int("chunk", chunk, 1)
+        self.init_batches = check_int("init_batches", init_batches, 1)
         self.codebooks = nn.ModuleList(
             Codebook(
                 entries,
@@ -161,6 +171,7 @@ class MultiStageQuantizer(nn.Module):
             "init_iters": first.init_iters,
             "init_restarts": first.init_restarts,
             "init_points": first.init_points,
+            "init_batches": self.init_batches,
             "reseed_below": first.reseed_below,
             "stage_dropout": self.stage_dropout,
             "metric": self.metric,
@@ -178,6 +189,12 @@ class MultiStageQuantizer(nn.Module):
         self.register_buffer("energy_left", torch.ones(stages))
         self.register_buffer("stage_error", torch.zeros(stages))
         self.register_buffer("stats_steps", torch.zeros(stages, dtype=torch.int64))
+        if self.init_batches > 1 and first.init == "kmeans":
+            # Vectors collected for k-means over the first batches (identical on every rank; emptied
+            # once fitted) and [batches, vectors] seen so far, all ranks together.
+            self.register_buffer("init_rows", torch.zeros(0, self.code_dim))
+            self.register_buffer("init_seen", torch.zeros(2, dtype=torch.int64))
+        self._ranks_checked = False  # the first training step under torch.distributed compares the ranks
         # What the tensors mean, stored with them: loading checks it field by field.
         layout = [self._config[name] for name in _LAYOUT_NUMBERS] + [
             _LAYOUT_CHOICES[name].index(self._config[name]) for name in _LAYOUT_CHOICES
@@ -263,8 +280,12 @@ class MultiStageQuantizer(nn.Module):
             real = mask.reshape(-1).to(rows.device)
         else:
             real = torch.ones(rows.shape[0], dtype=torch.bool, device=rows.device)
+        if self.training and not self._ranks_checked:
+            self._check_ranks()
         z = self._project_in(rows)
         residual = _finite_lookup_input(z)
+        init_plan = self._plan_collection(residual.detach()[real]) if self.training and self._waiting() else None
+        waiting = init_plan is not None and init_plan.updates is None
         stage_count = self._stage_counts(lead, n_use, rows.device)
         counts = stage_count.reshape(-1)
 
@@ -277,7 +298,12 @@ class MultiStageQuantizer(nn.Module):
         for s in range(n_use):
             used = counts > s
             learn = used & real
-            stage_codes, q, update = self.codebooks[s].plan_step(residual, learn)
+            if waiting:  # k-means initialisation still collects vectors: encode only, learn nothing
+                stage_codes, _ = self.codebooks[s].search(residual)
+                q, update = F.embedding(stage_codes, self.codebooks[s].codewords.float()), None
+            else:
+                start = init_plan.updates[s] if init_plan is not None and init_plan.updates is not None else None
+                stage_codes, q, update = self.codebooks[s].plan_step(residual, learn, start)
             updates.append(update)
             q = q * used.unsqueeze(1)
             codes[:, s] = torch.where(used, stage_codes, torch.full_like(stage_codes, -1))
@@ -287,16 +313,19 @@ class MultiStageQuantizer(nn.Module):
             loss = loss + self.beta * (err * w).sum() / denom
             if self.update == "gradient":
                 loss = loss + ((((residual.detach() - q) ** 2).sum(-1)) * w).sum() / denom
-            if self.training:
+            if self.training and not waiting:
                 chain.add(s, squared_error=(err.detach() * w).sum(), rows=w.sum(), energy=(signal * w).sum())
             total = total + q.detach()
             residual = residual - q.detach()
         if self.training:
             with torch.no_grad():
-                chain = chain.all_reduce()
-                for codebook, update in zip(self.codebooks, updates):
-                    codebook.commit_step(update)
-                self._commit_chain(chain)
+                if not waiting:
+                    chain = chain.all_reduce()
+                    for codebook, update in zip(self.codebooks, updates):
+                        codebook.commit_step(update)
+                    self._commit_chain(chain)
+                if init_plan is not None:
+                    self._commit_collection(init_plan, n_use)
 
         # Straight-through: the value is the codeword sum, the gradient goes to z unchanged.
         zf = z.float()
@@ -307,6 +336,82 @@ class MultiStageQuantizer(nn.Module):
             loss=loss,
             stage_count=stage_count,
         )
+
+    # ------------------------------------------------------ k-means initialisation
+    def _waiting(self) -> bool:
+        """True while k-means initialisation has not fitted every stage."""
+        return self.codebooks[0].init == "kmeans" and not all(bool(cb.initialised) for cb in self.codebooks)
+
+    @torch.no_grad()
+    def _plan_collection(self, z: torch.Tensor) -> _InitPlan:
+        """Add the real vectors ``z`` ``[n, code_dim]`` of every rank; plan the fit of every stage once enough are in.
+
+        Nothing is written here (see :meth:`_commit_collection`).
+        """
+        rows = _dist.gather_rows(z.float())
+        limit = self.codebooks[0].init_points
+        if self.init_batches == 1:
+            held, batches, seen = rows[:0], 1, rows.shape[0]
+        else:
+            held = self.init_rows
+            batches, seen = int(self.init_seen[0]) + 1, int(self.init_seen[1]) + rows.shape[0]
+        room = limit - held.shape[0]
+        if rows.shape[0] > room:
+            rows = rows[same_subset(rows.shape[0], room, rows.device)]
+        held = torch.cat([held, rows.to(held)])
+        if held.shape[0] == 0 or (batches < self.init_batches and held.shape[0] < limit):
+            return _InitPlan(held, batches, seen, None)
+        updates, residual = [], held
+        for cb in self.codebooks:  # stage by stage on the residuals
+            update = StepUpdate()
+            if not bool(cb.initialised):
+                cb.plan_fit(residual, seen / batches, update)
+            codewords = update.values.get("codewords", cb.codewords.detach()).float()
+            codes, _ = nearest_code(residual, codewords, metric=cb.metric, chunk=cb.chunk)
+            residual = residual - F.embedding(codes, codewords)
+            updates.append(update)
+        return _InitPlan(held[:0], batches, seen, updates)
+
+    @torch.no_grad()
+    def _commit_collection(self, plan: _InitPlan, used: int) -> None:
+        """Write the collected rows, and the fits of the stages this step did not use."""
+        if plan.updates is not None:
+            for codebook, update in zip(self.codebooks[used:], plan.updates[used:]):
+                codebook.commit_step(update)
+        if "init_rows" in self._buffers:
+            self.init_rows = plan.rows
+            self.init_seen.copy_(torch.tensor([plan.batches, plan.seen]))
+
+    # ------------------------------------------------------------ several ranks
+    def _rank_fingerprint(self) -> dict[str, Any]:
+        """What must be equal on every rank: options, tensor shapes, init flags, steps, codeword sums."""
+        facts: dict[str, Any] = {f"option {k}": v for k, v in self._config.items()}
+        for name, t in list(self.named_parameters()) + list(self.named_buffers()):
+            facts[f"shape of {name}"] = [list(t.shape), str(t.dtype)]
+        for s, cb in enumerate(self.codebooks):
+            facts[f"stage {s + 1} initialised, step"] = [bool(cb.initialised), int(cb.step)]
+            if bool(cb.initialised):
+                facts[f"stage {s + 1} codeword sum"] = float(cb.codewords.detach().double().sum())
+        return facts
+
+    def _check_ranks(self) -> None:
+        """First training step under ``torch.distributed``: every rank must hold the same layer.
+
+        One small all-gather of the fingerprint; an RvqlayerError naming what differs otherwise.
+        """
+        if _dist.is_distributed():
+            mine = self._rank_fingerprint()
+            device = self.codebooks[0].ema_count.device
+            every = [json.loads(b) for b in _dist.gather_bytes(json.dumps(mine, sort_keys=True).encode(), device)]
+            differ = sorted({k for facts in every for k in set(facts) | set(mine) if facts.get(k) != mine.get(k)})
+            if differ:
+                shown = "; ".join(
+                    f"{k}: " + ", ".join(f"{facts.get(k)!r} on rank {r}" for r, facts in enumerate(every))
+                    for k in differ[:8]
+                )
+                more = f" (and {len(differ) - 8} more)" if len(differ) > 8 else ""
+                raise fail("the layer", "the same on every rank", shown + more)
+        self._ranks_checked = True
 
     def _project_in(self, rows: torch.Tensor) -> torch.Tensor:
         """Rows ``[n, dim]`` into the lookup space, in the projection's own dtype."""
@@ -530,6 +635,16 @@ class _ChainStats:
         return _ChainStats(*packed)
 
 
+@dataclass
+class _InitPlan:
+    """k-means collection of one training step: rows to keep, batches and vectors seen, fits (None: still waiting)."""
+
+    rows: torch.Tensor
+    batches: int
+    seen: int
+    updates: list[StepUpdate] | None
+
+
 def _layout_fields(layout: torch.Tensor) -> dict[str, Any]:
     values = [int(v) for v in layout.tolist()]
     named = dict(zip(_LAYOUT_NUMBERS, values))
@@ -591,7 +706,11 @@ def _check_loaded_state(
         t = state_dict[full]
         if not isinstance(t, torch.Tensor):
             raise fail(f"state_dict[{full!r}]", "a tensor", type(t).__name__)
-        if t.shape != ref.shape:
+        if name == "init_rows":  # collected k-means rows: any count up to init_points
+            limit = module.codebooks[0].init_points
+            if t.ndim != 2 or t.shape[1] != ref.shape[1] or t.shape[0] > limit:
+                raise fail(f"state_dict[{full!r}]", f"of shape [m, {ref.shape[1]}] with m <= {limit}", tuple(t.shape))
+        elif t.shape != ref.shape:
             raise fail(f"state_dict[{full!r}]", f"of shape {tuple(ref.shape)}", f"shape {tuple(t.shape)}")
         if t.is_floating_point() and t.numel() and not bool(torch.isfinite(t).all()):
             raise fail(
@@ -603,3 +722,9 @@ def _check_loaded_state(
         extra = sorted(k for k in state_dict if k.startswith(prefix) and k[len(prefix) :] not in own)
         if extra:
             raise fail("state_dict", "only this layer's tensors", f"unexpected {extra[:3]}")
+    # Every check passed: the collected k-means rows take the incoming length, and the
+    # ranks are compared again at the next training step.
+    rows = state_dict.get(prefix + "init_rows")
+    if "init_rows" in module._buffers and isinstance(rows, torch.Tensor):
+        module._buffers["init_rows"] = module.init_rows.new_zeros(rows.shape)
+    module._ranks_checked = False

@@ -1,13 +1,15 @@
 """Two gloo processes on CPU against one process that sees all the data."""
 
 import os
+import time
+from datetime import timedelta
 
 import pytest
 import torch
 import torch.distributed as dist
 import torch.multiprocessing as mp
 
-from rvqlayer import MultiStageQuantizer
+from rvqlayer import MultiStageQuantizer, RvqlayerError
 
 WORLD, STEPS, HALF = 2, 4, 96
 
@@ -65,3 +67,113 @@ def test_two_ranks_match_one_process_on_all_data(rank_states):
     single = _train(_make(0.0), _batches())
     for key, value in single.items():
         torch.testing.assert_close(rank_states[0.0][0][key].to(value.dtype), value, rtol=1e-4, atol=1e-5, msg=key)
+
+
+# ----------------------------------------------- uneven shards, masks, init over batches
+SIZES = (96, 40)  # rows per step on rank 0 and rank 1
+MASKED = (2, 1)  # at step 2, rank 1's batch is all padding
+
+
+def _make_uneven() -> MultiStageQuantizer:
+    torch.manual_seed(0)
+    return MultiStageQuantizer(3, stages=2, entries=8, init_batches=2, reseed_below=0.0)
+
+
+def _uneven_batches():
+    g = torch.Generator().manual_seed(2)
+    steps = []
+    for step in range(STEPS):
+        parts = [torch.randn(n, 3, generator=g) for n in SIZES]
+        masks = [torch.ones(n, dtype=torch.bool) for n in SIZES]
+        if step == MASKED[0]:
+            masks[MASKED[1]][:] = False
+        steps.append((parts, masks))
+    return steps
+
+
+def _train_uneven(q, part=None):
+    for parts, masks in _uneven_batches():
+        if part is None:
+            q(torch.cat(parts), mask=torch.cat(masks))
+        else:
+            q(parts[part], mask=masks[part])
+    return {k: v.clone() for k, v in q.state_dict().items()}
+
+
+def _mismatch_message(rank: int) -> str:
+    torch.manual_seed(0)
+    q = MultiStageQuantizer(3, stages=2, entries=(8, 16)[rank], ema_decay=(0.99, 0.9)[rank])
+    try:
+        q(torch.randn(10, 3))
+    except RvqlayerError as error:
+        return str(error)
+    return "no error"
+
+
+def _scenario_worker(rank, init_file, out_dir):
+    dist.init_process_group("gloo", init_method=f"file://{init_file}", rank=rank, world_size=WORLD)
+    try:
+        torch.manual_seed(100 + rank)
+        torch.save(_train_uneven(_make_uneven(), part=rank), os.path.join(out_dir, f"uneven{rank}.pt"))
+        with open(os.path.join(out_dir, f"mismatch{rank}.txt"), "w") as f:
+            f.write(_mismatch_message(rank))
+    finally:
+        dist.destroy_process_group()
+
+
+@pytest.fixture(scope="module")
+def scenario_dir(tmp_path_factory):
+    out = tmp_path_factory.mktemp("scenarios")
+    mp.spawn(_scenario_worker, args=(str(out / "init"), str(out)), nprocs=WORLD, join=True)
+    return out
+
+
+def test_uneven_shards_and_a_fully_masked_rank_match_one_process(scenario_dir):
+    states = [torch.load(scenario_dir / f"uneven{r}.pt", weights_only=True) for r in range(WORLD)]
+    for key in states[0]:
+        assert torch.equal(states[0][key], states[1][key]), key
+    assert bool(states[0]["codebooks.0.initialised"]) and states[0]["init_seen"].tolist() == [2, 2 * sum(SIZES)]
+    torch.manual_seed(100)
+    single = _train_uneven(_make_uneven())
+    for key, value in single.items():
+        torch.testing.assert_close(states[0][key].to(value.dtype), value, rtol=1e-4, atol=1e-5, msg=key)
+
+
+def test_ranks_built_differently_fail_naming_the_options(scenario_dir):
+    for rank in range(WORLD):
+        message = (scenario_dir / f"mismatch{rank}.txt").read_text()
+        assert message.startswith("expected `the layer` to be the same on every rank"), message
+        assert "option entries: 8 on rank 0, 16 on rank 1" in message
+        assert "option ema_decay: 0.99 on rank 0, 0.9 on rank 1" in message
+        assert "option beta" not in message
+
+
+# ------------------------------------------------------------ bounded-time failure
+def _raising_worker(rank, init_file, out_dir):
+    dist.init_process_group(
+        "gloo", init_method=f"file://{init_file}", rank=rank, world_size=WORLD, timeout=timedelta(seconds=3)
+    )
+    torch.manual_seed(0)
+    q = MultiStageQuantizer(3, stages=2, entries=8)
+    if rank == 1:
+        try:
+            raise RuntimeError("a bad batch")  # caught, and this rank stays alive without calling forward
+        except RuntimeError:
+            time.sleep(6)
+        return
+    start = time.monotonic()
+    try:
+        q(torch.randn(10, 3))
+        outcome = "returned"
+    except RuntimeError as error:
+        outcome = f"{type(error).__name__}: {error}"
+    with open(os.path.join(out_dir, "raised.txt"), "w") as f:
+        f.write(f"{time.monotonic() - start:.2f}\n{outcome}")
+
+
+def test_a_rank_that_stops_calling_forward_fails_the_others_at_the_timeout(tmp_path):
+    mp.spawn(_raising_worker, args=(str(tmp_path / "init"), str(tmp_path)), nprocs=WORLD, join=True)
+    seconds, outcome = (tmp_path / "raised.txt").read_text().split("\n", 1)
+    assert outcome != "returned"
+    assert "timed out" in outcome.lower() or "timeout" in outcome.lower(), outcome
+    assert 2.5 <= float(seconds) < 15.0

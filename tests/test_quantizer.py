@@ -366,6 +366,7 @@ def test_config_rebuilds_an_identical_layer():
         init_iters=4,
         init_restarts=2,
         init_points=1000,
+        init_batches=3,
         reseed_below=0.1,
         stage_dropout=0.3,
         metric="cosine",
@@ -384,3 +385,71 @@ def test_config_rebuilds_an_identical_layer():
     twin.load_state_dict(q.state_dict())
     x = torch.randn(2, 12, 5)
     torch.testing.assert_close(twin.eval().decode(twin.encode(x)), q.eval().decode(q.encode(x)))
+
+
+# ------------------------------------------------------ init over several batches
+def _cluster_batch(centre: float, n: int = 50) -> torch.Tensor:
+    g = torch.Generator().manual_seed(int(centre) + 100)
+    return centre + 0.1 * torch.randn(n, 2, generator=g)
+
+
+def test_init_waits_for_init_batches_and_learns_nothing_before():
+    torch.manual_seed(0)
+    q = MultiStageQuantizer(2, stages=2, entries=3, init_batches=3)
+    start = {k: v.clone() for k, v in q.state_dict().items()}
+    for i, centre in enumerate((0.0, 20.0)):
+        x = _cluster_batch(centre)
+        out = q(x)
+        # Before initialisation: the codes of the construction-time codewords, nothing learned.
+        torch.testing.assert_close(out.codes, q.eval().encode(x))
+        q.train()
+        assert not any(bool(cb.initialised) for cb in q.codebooks)
+        assert q.init_rows.shape == (50 * (i + 1), 2)
+        for key, value in q.state_dict().items():
+            if key not in ("init_rows", "init_seen"):
+                assert torch.equal(value, start[key]), key
+    q(_cluster_batch(40.0))
+    assert all(bool(cb.initialised) for cb in q.codebooks)
+    assert q.init_rows.shape == (0, 2) and q.init_seen.tolist() == [3, 150]
+    # The fit saw all three batches: one codeword per cluster (the first batch alone has one cluster).
+    first = q.codebooks[0].codewords[:, 0].sort().values
+    torch.testing.assert_close(first, torch.tensor([0.0, 20.0, 40.0]), atol=0.1, rtol=0)
+
+
+def test_init_fits_early_once_init_points_are_collected():
+    torch.manual_seed(1)
+    q = MultiStageQuantizer(2, stages=1, entries=3, init_batches=5, init_points=80)
+    q(_cluster_batch(0.0))
+    assert not bool(q.codebooks[0].initialised)
+    q(_cluster_batch(20.0))  # 100 vectors seen, 80 kept: fitted at the second batch
+    assert bool(q.codebooks[0].initialised)
+    assert q.init_seen.tolist() == [2, 100]
+    # counts start on the scale of one batch (50 vectors), as the EMA counts are
+    assert float(q.codebooks[0].ema_count.sum()) == pytest.approx(50.0, rel=0.05)
+
+
+def test_resume_during_init_collection_is_bit_exact():
+    torch.manual_seed(2)
+    a = MultiStageQuantizer(2, stages=2, entries=4, init_batches=3)
+    a(_cluster_batch(0.0))
+    a(_cluster_batch(20.0))
+    torch.manual_seed(99)
+    b = MultiStageQuantizer(2, stages=2, entries=4, init_batches=3)
+    b.load_state_dict(a.state_dict())
+    for q in (a, b):
+        torch.manual_seed(3)
+        q(_cluster_batch(40.0))
+        q(_cluster_batch(10.0))
+    for key, value in a.state_dict().items():
+        assert torch.equal(value, b.state_dict()[key]), key
+
+
+def test_fully_masked_batches_do_not_count_as_init_data():
+    torch.manual_seed(4)
+    q = MultiStageQuantizer(2, stages=1, entries=3)
+    x = _cluster_batch(0.0)
+    out = q(x, mask=torch.zeros(50, dtype=torch.bool))
+    assert int(out.codes.min()) >= 0 and not bool(q.codebooks[0].initialised)
+    assert int(q.codebooks[0].step) == 0
+    q(x)
+    assert bool(q.codebooks[0].initialised)

@@ -1,8 +1,12 @@
 """Two gloo processes on CPU against one process that sees all the data."""
 
+import json
 import os
+import subprocess
+import sys
 import time
 from datetime import timedelta
+from pathlib import Path
 
 import pytest
 import torch
@@ -177,3 +181,49 @@ def test_a_rank_that_stops_calling_forward_fails_the_others_at_the_timeout(tmp_p
     assert outcome != "returned"
     assert "timed out" in outcome.lower() or "timeout" in outcome.lower(), outcome
     assert 2.5 <= float(seconds) < 15.0
+
+
+# ------------------------------------------------------------- Lightning, 2 processes
+HELPER = Path(__file__).resolve().parent / "_lightning_ddp.py"
+
+
+@pytest.fixture(scope="module")
+def lightning_runs(tmp_path_factory):
+    """Run tests/_lightning_ddp.py with 2 devices (DDP) and with 1, side by side."""
+    pytest.importorskip("pytorch_lightning")
+    out = tmp_path_factory.mktemp("lightning")
+    root = str(HELPER.parents[1])
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([root, os.environ.get("PYTHONPATH", "")])}
+    runs = [
+        subprocess.Popen(
+            [sys.executable, str(HELPER), str(out), str(devices)],
+            stdout=subprocess.PIPE,
+            stderr=subprocess.STDOUT,
+            text=True,
+            env=env,
+            cwd=root,
+        )
+        for devices in (2, 1)
+    ]
+    for run in runs:
+        output, _ = run.communicate(timeout=300)
+        assert run.returncode == 0, output
+    return out
+
+
+def test_lightning_ddp_ranks_identical_and_equal_to_one_process(lightning_runs):
+    ranks = [torch.load(lightning_runs / f"rank{r}_of2.pt", weights_only=True) for r in range(WORLD)]
+    single = torch.load(lightning_runs / "rank0_of1.pt", weights_only=True)
+    assert bool(single["codebooks.2.initialised"]) and int(single["codebooks.0.step"]) == 5  # 6 steps, 1 collecting
+    for key, value in single.items():
+        assert torch.equal(ranks[0][key], ranks[1][key]), key
+        # EMA mode: one process on the concatenated batches, to 1e-5
+        torch.testing.assert_close(ranks[0][key], value, rtol=0, atol=1e-5, msg=key)
+
+
+def test_codebook_monitor_under_ddp_logs_and_warns_on_rank_zero_only(lightning_runs):
+    seen = [json.loads((lightning_runs / f"rank{r}_of2.json").read_text()) for r in range(WORLD)]
+    alone = json.loads((lightning_runs / "rank0_of1.json").read_text())
+    # dead_below=1.0 makes about half the entries count as dead, so each of the 3 stages warns once.
+    assert seen[0] == alone == {"warnings": 3, "logger_calls": 3}
+    assert seen[1] == {"warnings": 0, "logger_calls": 0}

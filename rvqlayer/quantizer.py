@@ -339,8 +339,11 @@ class MultiStageQuantizer(nn.Module):
 
     # ------------------------------------------------------ k-means initialisation
     def _waiting(self) -> bool:
-        """True while k-means initialisation has not fitted every stage."""
-        return self.codebooks[0].init == "kmeans" and not all(bool(cb.initialised) for cb in self.codebooks)
+        """True while k-means over several batches has not fitted every stage.
+
+        With ``init_batches=1`` each stage fits itself in its first training step instead.
+        """
+        return "init_rows" in self._buffers and not all(bool(cb.initialised) for cb in self.codebooks)
 
     @torch.no_grad()
     def _plan_collection(self, z: torch.Tensor) -> _InitPlan:
@@ -350,11 +353,8 @@ class MultiStageQuantizer(nn.Module):
         """
         rows = _dist.gather_rows(z.float())
         limit = self.codebooks[0].init_points
-        if self.init_batches == 1:
-            held, batches, seen = rows[:0], 1, rows.shape[0]
-        else:
-            held = self.init_rows
-            batches, seen = int(self.init_seen[0]) + 1, int(self.init_seen[1]) + rows.shape[0]
+        held = self.init_rows  # at most init_points rows are kept, and they feed every stage
+        batches, seen = int(self.init_seen[0]) + 1, int(self.init_seen[1]) + rows.shape[0]
         room = limit - held.shape[0]
         if rows.shape[0] > room:
             rows = rows[same_subset(rows.shape[0], room, rows.device)]
@@ -378,9 +378,8 @@ class MultiStageQuantizer(nn.Module):
         if plan.updates is not None:
             for codebook, update in zip(self.codebooks[used:], plan.updates[used:]):
                 codebook.commit_step(update)
-        if "init_rows" in self._buffers:
-            self.init_rows = plan.rows
-            self.init_seen.copy_(torch.tensor([plan.batches, plan.seen]))
+        self.init_rows = plan.rows
+        self.init_seen.copy_(torch.tensor([plan.batches, plan.seen]))
 
     # ------------------------------------------------------------ several ranks
     def _rank_fingerprint(self) -> dict[str, Any]:

@@ -15,9 +15,10 @@ from ._checks import check_choice, check_features, check_float, check_int, check
 from .bitrate import bitrate as _bitrate
 from .bitrate import bits_per_vector as _bits_per_vector
 from .codebook import Codebook, Init, Update
-from .ema import moving_average_
+from .ema import moving_average_, smoothed_codewords
 from .health import HealthReport, StageStatistics, health_report
-from .search import Metric, beam_encode
+from .refine import FitMethod, refine_codebooks
+from .search import Metric, beam_encode, nearest_code
 
 # Bounds that keep a layer (or a file that declares one) from exhausting memory.
 MAX_DIM = 2**16
@@ -396,6 +397,88 @@ class MultiStageQuantizer(nn.Module):
             c = flat[:, s]
             total = total + self.codebooks[s].lookup(c.clamp_min(0)) * (c >= 0).unsqueeze(1)
         return self._unflatten(self._project_out(total), lead).to(self.dtype_probe.dtype)
+
+    # ------------------------------------------------------------- refinement
+    def _encode_with(self, z: torch.Tensor, books: list[torch.Tensor], beam: int) -> torch.Tensor:
+        """Codes ``[n, len(books)]`` of lookup-space ``z`` ``[n, code_dim]`` with the given codewords."""
+        if beam > 1:
+            return beam_encode(z, books, beam=beam, chunk=self.chunk)
+        codes = torch.empty(z.shape[0], len(books), dtype=torch.int64, device=z.device)
+        residual = z.float()
+        for s, c in enumerate(books):
+            codes[:, s], _ = nearest_code(residual, c, metric=self.metric, chunk=self.chunk)
+            residual = residual - c.float()[codes[:, s]]
+        return codes
+
+    @torch.no_grad()
+    def refine(
+        self,
+        data: torch.Tensor,
+        *,
+        rounds: int = 3,
+        beam: int = 1,
+        method: FitMethod = "auto",
+        chunk: int = 65536,
+    ) -> list[float]:
+        """Re-fit all stages' codewords jointly to ``data`` with the codes fixed, re-encode; a few rounds.
+
+        Works in the lookup space (after ``project_in``, which is not changed).
+        Each round solves for the codewords of every stage at once that
+        minimise the total squared error of ``data`` for its current codes
+        (:func:`rvqlayer.refine.fit_codewords`; memory bounded by ``chunk``
+        rows and the number of codewords, not by the size of ``data``), then
+        encodes ``data`` again with ``beam`` (1 = greedy); a round that does
+        not lower that error is dropped, so the error on ``data`` never rises.
+        Codebooks not yet initialised are first fitted by k-means, stage by
+        stage. Afterwards the usage counts are those of the new codes (scaled
+        to the previous total count), and for EMA layers the running sums are
+        set so that the next EMA update starts from the refined codewords.
+        Meant for offline use (a frozen encoder) on one process.
+
+        Args:
+            data: float tensor with ``dim`` features on ``axis``.
+            rounds: at most this many rounds (>= 0).
+            beam: beam width of the encoder the codewords are refined for.
+            method: ``"auto"``, ``"joint"`` or ``"alternating"`` (see
+                :func:`rvqlayer.refine.fit_codewords`).
+            chunk: rows per block when accumulating.
+
+        Returns:
+            the mean squared error per lookup element on ``data`` before, then
+            after each kept round.
+        """
+        check_features("data", data, self.dim, self.axis)
+        check_int("rounds", rounds, 0)
+        check_int("beam", beam, 1)
+        check_choice("method", method, ("auto", "joint", "alternating"))
+        check_int("chunk", chunk, 1)
+        rows, _ = self._flatten(data)
+        if rows.shape[0] == 0:
+            raise fail("data", "at least one vector", "none")
+        z = _finite_lookup_input(self._project_in(rows))
+        residual = z
+        for cb in self.codebooks:
+            if not bool(cb.initialised):
+                cb.initialise(residual)
+            residual = residual - cb.lookup(cb.search(residual)[0])
+        books = [cb.codewords.detach().float() for cb in self.codebooks]
+        result = refine_codebooks(
+            z, books, lambda x, b: self._encode_with(x, b, beam), rounds=rounds, method=method, chunk=chunk
+        )
+        for s, cb in enumerate(self.codebooks):
+            usage = torch.bincount(result.codes[:, s], minlength=cb.entries).float()
+            total = float(cb.ema_count.sum())
+            usage = usage * (total / rows.shape[0]) if total > 0 else usage
+            cb.ema_count.copy_(usage)
+            cb.usage_count.copy_(usage)
+            cb.codewords.data.copy_(result.codebooks[s].to(cb.codewords.dtype))
+            if cb.update == "ema":
+                # sums such that the layer's own formula m / N~ gives back the refined codewords
+                per_count = smoothed_codewords(cb.ema_count, torch.ones_like(cb.ema_count).unsqueeze(1), cb.eps)
+                cb.ema_sum.copy_(result.codebooks[s] / per_count)
+            else:
+                cb.previous_codewords.copy_(cb.codewords.detach())
+        return result.errors
 
     # ------------------------------------------------------------------ health
     def stage_statistics(self, codes: torch.Tensor | None = None) -> list[StageStatistics]:

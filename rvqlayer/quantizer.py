@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Literal
 
 import torch
 from einops import rearrange
@@ -18,6 +18,7 @@ from .codebook import Codebook, Init, Update
 from .ema import moving_average_, smoothed_codewords
 from .health import HealthReport, StageStatistics, health_report
 from .refine import FitMethod, refine_codebooks
+from .rotation import ESTIMATORS, rotation_trick, straight_through
 from .search import Metric, beam_encode, nearest_code
 
 # Bounds that keep a layer (or a file that declares one) from exhausting memory.
@@ -31,6 +32,8 @@ MAX_LOOKUP_NORM = 4e18
 _LAYOUT_NUMBERS = ("dim", "entries", "code_dim")
 _LAYOUT_CHOICES = {"update": ("ema", "gradient"), "metric": ("l2", "cosine")}
 
+Estimator = Literal["straight_through", "rotation"]
+
 
 @dataclass
 class QuantizerOutput:
@@ -38,7 +41,8 @@ class QuantizerOutput:
 
     Attributes:
         quantized: same shape and dtype as the input; the gradient reaches
-            the input unchanged (straight-through estimator).
+            the input unchanged (straight-through estimator) or through the
+            rotation trick (``estimator="rotation"``).
         codes: int64 ``[..., stages]`` (the input's shape without its feature
             axis, then one code per stage); ``-1`` marks a stage that stage
             dropout left out for that vector.
@@ -77,6 +81,17 @@ class MultiStageQuantizer(nn.Module):
         axis: the feature axis of the input (``1`` for ``[batch, channels, time]``).
         chunk: rows per distance block (bounds memory).
         eps: count smoothing of the EMA update.
+        train_beam: beam width of the encoding inside ``forward`` (training
+            and eval): the EMA statistics, losses and output use the codes
+            that ``encode(x, stages=k, beam=train_beam)`` gives, for each
+            vector's stage count ``k``; 1 = greedy. The first training batch
+            (k-means initialisation) is encoded greedily.
+        estimator: how the gradient crosses the quantizer:
+            ``"straight_through"`` copies it to the lookup-space input ``z``;
+            ``"rotation"`` (Fifty et al., ICLR 2025) carries ``z`` onto the sum
+            of its chosen codewords by a rotation and rescaling held constant
+            in the backward pass (applied once, to the whole lookup-space
+            vector, not per stage). The forward value is the same.
 
     The loss is ``beta * sum_k mse(r_k, sg(q_k))`` over stages (each term a
     mean over the vector's elements and the real, undropped vectors), plus
@@ -111,6 +126,8 @@ class MultiStageQuantizer(nn.Module):
         axis: int = -1,
         chunk: int = 4096,
         eps: float = 1e-5,
+        train_beam: int = 1,
+        estimator: Estimator = "straight_through",
     ) -> None:
         super().__init__()
         self.dim = check_int("dim", dim, 1, MAX_DIM)
@@ -130,6 +147,8 @@ class MultiStageQuantizer(nn.Module):
         self.metric = check_choice("metric", metric, ("l2", "cosine"))
         self.axis = check_int("axis", axis, -(2**31))
         self.chunk = check_int("chunk", chunk, 1)
+        self.train_beam = check_int("train_beam", train_beam, 1)
+        self.estimator = check_choice("estimator", estimator, ESTIMATORS)
         self.codebooks = nn.ModuleList(
             Codebook(
                 entries,
@@ -168,6 +187,8 @@ class MultiStageQuantizer(nn.Module):
             "axis": self.axis,
             "chunk": self.chunk,
             "eps": first.eps,
+            "train_beam": self.train_beam,
+            "estimator": self.estimator,
         }
         if self.code_dim < dim:
             self.project_in: nn.Module = nn.Linear(dim, self.code_dim)
@@ -271,6 +292,7 @@ class MultiStageQuantizer(nn.Module):
 
         total = torch.zeros_like(residual)
         codes = torch.full((rows.shape[0], n_use), -1, dtype=torch.int64, device=rows.device)
+        searched = self._beam_codes(residual, counts, n_use)
         loss = residual.new_zeros(())
         chain = _ChainStats.empty(n_use, residual.device)
         signal = (residual.detach() ** 2).sum(-1)
@@ -278,7 +300,8 @@ class MultiStageQuantizer(nn.Module):
         for s in range(n_use):
             used = counts > s
             learn = used & real
-            stage_codes, q, update = self.codebooks[s].plan_step(residual, learn)
+            given = None if searched is None else searched[:, s].clamp_min(0)
+            stage_codes, q, update = self.codebooks[s].plan_step(residual, learn, given)
             updates.append(update)
             q = q * used.unsqueeze(1)
             codes[:, s] = torch.where(used, stage_codes, torch.full_like(stage_codes, -1))
@@ -299,9 +322,9 @@ class MultiStageQuantizer(nn.Module):
                     codebook.commit_step(update)
                 self._commit_chain(chain)
 
-        # Straight-through: the value is the codeword sum, the gradient goes to z unchanged.
-        zf = z.float()
-        out = self._project_out(zf + (total - zf).detach())
+        # The value is the codeword sum; the gradient goes to z straight through or by the rotation trick.
+        carry = rotation_trick if self.estimator == "rotation" else straight_through
+        out = self._project_out(carry(z.float(), total))
         return QuantizerOutput(
             quantized=self._unflatten(out, lead).to(x.dtype),
             codes=codes.reshape(*lead, n_use),
@@ -319,6 +342,22 @@ class MultiStageQuantizer(nn.Module):
         if isinstance(self.project_out, nn.Linear):
             rows = rows.to(self.project_out.weight.dtype)
         return self.project_out(rows)
+
+    @torch.no_grad()
+    def _beam_codes(self, z: torch.Tensor, counts: torch.Tensor, n_use: int) -> torch.Tensor | None:
+        """Beam-search codes ``[n, n_use]`` (-1 past each row's stage count), or None for greedy.
+
+        None while ``train_beam`` is 1 or a used codebook is not yet initialised.
+        Rows with ``k`` stages get ``encode``'s beam codes for ``k`` stages.
+        """
+        if self.train_beam == 1 or not all(bool(cb.initialised) for cb in self.codebooks[:n_use]):
+            return None
+        out = torch.full((z.shape[0], n_use), -1, dtype=torch.int64, device=z.device)
+        books = [cb.codewords for cb in self.codebooks[:n_use]]
+        for k in torch.unique(counts).tolist():
+            rows = counts == k
+            out[rows, :k] = beam_encode(z[rows], books[:k], beam=self.train_beam, chunk=self.chunk)
+        return out
 
     @torch.no_grad()
     def _commit_chain(self, chain: _ChainStats) -> None:

@@ -24,7 +24,7 @@ from ._checks import check_choice, check_int, fail
 FitMethod = Literal["auto", "joint", "alternating"]
 Encoder = Callable[[torch.Tensor, list[torch.Tensor]], torch.Tensor]
 
-JOINT_LIMIT = 4096  # "auto" solves jointly up to this many codewords in all (a 4096^2 float64 matrix is 128 MiB)
+JOINT_LIMIT = 2048  # "auto" solves jointly up to this many codewords in all (a 2048^2 float64 matrix is 32 MiB)
 
 
 @dataclass
@@ -79,12 +79,13 @@ def fit_codewords(
             once: with ``A`` the one-hot design of all stages' codes,
             ``(A^T A + r I) C = A^T x + r C_0``, where ``A^T A`` holds the
             counts of co-occurring code pairs, accumulated over row blocks of
-            ``chunk`` (memory ``(sum k_s)^2`` float64 whatever ``n``), and
+            ``chunk`` (memory a few times ``(sum k_s)^2`` float64 whatever
+            ``n``), and
             ``r = ridge * (mean count)`` keeps the system positive definite.
             ``"alternating"`` re-fits one stage at a time to what the other
             stages leave (each step the exact minimiser for that stage) until
             the error stops falling or after ``sweeps`` sweeps; memory
-            ``n * d``. ``"auto"``: joint up to 4096 codewords in all.
+            ``n * d`` float64. ``"auto"``: joint up to 2048 codewords in all.
         chunk: rows per block.
         ridge: see ``"joint"``.
         sweeps: most sweeps of ``"alternating"``.
@@ -112,9 +113,9 @@ def _fit_joint(
     for start in range(0, x.shape[0], chunk):
         idx = codes[start : start + chunk] + offsets  # [b, stages]: column of each stage's code in A
         block = x[start : start + chunk].double()
-        pairs = (idx.unsqueeze(2) * m + idx.unsqueeze(1)).reshape(-1)
-        gram.index_add_(0, pairs, torch.ones(pairs.shape[0], dtype=torch.float64, device=x.device))
-        for s in range(idx.shape[1]):
+        ones = torch.ones(idx.numel(), dtype=torch.float64, device=x.device)
+        for s in range(idx.shape[1]):  # row idx[:, s] of A^T A gains one at every code the vector uses
+            gram.index_add_(0, (idx[:, s : s + 1] * m + idx).reshape(-1), ones)
             rhs.index_add_(0, idx[:, s], block)
     gram = gram.view(m, m)
     start_books = torch.cat([c.detach().double() for c in codebooks])

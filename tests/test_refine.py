@@ -106,6 +106,7 @@ def test_layer_refine_keeps_ema_statistics_consistent():
         torch.testing.assert_close(smoothed_codewords(cb.ema_count, cb.ema_sum, cb.eps), cb.codewords)
         usage = torch.bincount(codes[:, s], minlength=8).float()
         torch.testing.assert_close(cb.ema_count, usage * totals[s] / 2000)
+        torch.testing.assert_close(cb.usage_count, cb.ema_count)  # what health reports
     # The next EMA step starts from the refined codewords (decay 0.99: a 1% step toward the batch),
     # not from stale sums that would pull them back to where they were.
     q.train()

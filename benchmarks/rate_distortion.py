@@ -113,6 +113,7 @@ def measure(
     rounds: int,
     ema_decay: float,
     seed: int,
+    stage_counts: list[int] | None = None,
 ) -> list[dict[str, float]]:
     """One row per stage count: bits per dimension, Shannon, Lloyd-Max and each method's SNR (dB)."""
     torch.manual_seed(seed)
@@ -125,7 +126,9 @@ def measure(
     test = torch.randn(max(1, held_out // dim), dim, generator=torch.Generator().manual_seed(seed + 2))
     kmeans = _kmeans_layer(dim, stages, entries, train, seed) if "kmeans" in methods else None
     rows = []
-    for k in range(1, stages + 1):
+    for k in stage_counts or range(1, stages + 1):
+        if k > stages:
+            continue
         bits = q.bits_per_vector(stages=k) / dim
         row: dict[str, float] = {"stages": k, "bits": bits, "shannon": DB_PER_BIT * bits}
         levels = entries**k
@@ -210,6 +213,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--rounds", type=int, default=4, help="refinement rounds")
     parser.add_argument("--ema-decay", type=float, default=0.99, help="EMA decay of the layer")
     parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--stage-counts", default=None, help="comma list of stage counts to measure (default all)")
     parser.add_argument("--threads", type=int, default=1, help="torch intra-op threads")
     parser.add_argument(
         "--quick", action="store_true", help="200 steps, 2^14 training vectors, 2^17 held-out numbers, 2 rounds"
@@ -230,7 +234,8 @@ def main(argv: list[str] | None = None) -> int:
     )
     print(about, flush=True)
     results = []
-    md = ["# Rate against distortion: the layer beside the Shannon bound", "", about, ""]
+    command = "python benchmarks/rate_distortion.py " + " ".join(sys.argv[1:] if argv is None else argv)
+    md = ["# Rate against distortion: the layer beside the Shannon bound", "", f"`{command.strip()}`", "", about, ""]
     for setting in settings:
         start = time.perf_counter()
         rows = measure(
@@ -243,6 +248,7 @@ def main(argv: list[str] | None = None) -> int:
             rounds=args.rounds,
             ema_decay=args.ema_decay,
             seed=args.seed,
+            stage_counts=[int(k) for k in args.stage_counts.split(",")] if args.stage_counts else None,
         )
         took = time.perf_counter() - start
         results.append((setting, rows))

@@ -113,7 +113,7 @@ def test_layer_refine_keeps_ema_statistics_consistent():
     before = [cb.codewords.clone() for cb in q.codebooks]
     q(x[:500])
     for b, cb in zip(before, q.codebooks):
-        assert float((cb.codewords - b).norm(dim=1).max()) < 0.2
+        assert float((cb.codewords - b).norm(dim=1).max()) < 0.02  # seeds 0-4, 1 and 2 threads: at most 0.002
 
 
 def test_layer_refine_initialises_and_works_for_gradient_codebooks():

@@ -28,8 +28,10 @@ def same_subset(n: int, size: int, device: torch.device) -> torch.Tensor:
 class Codebook(nn.Module):
     """A single stage of ``entries`` codewords of size ``code_dim``.
 
-    ``forward(x, weight=None)`` takes ``[n, code_dim]`` vectors and returns the
-    codes (int64 ``[n]``) and the chosen codewords (``[n, code_dim]``, float32).
+    ``forward(x, weight=None, codes=None)`` takes ``[n, code_dim]`` vectors and
+    returns the codes (int64 ``[n]``; the nearest codewords unless ``codes``
+    are given, for example by beam search) and the chosen codewords
+    (``[n, code_dim]``, float32).
     In training mode it also learns: k-means initialisation on the first batch
     (``init="kmeans"``), the EMA update (``update="ema"``), usage statistics
     and dead-code reseeding. Rows whose ``weight`` is False are encoded but
@@ -140,14 +142,20 @@ class Codebook(nn.Module):
         """Nearest code ``[n]`` and its distance ``[n]`` for ``x`` ``[n, code_dim]``; no learning."""
         return nearest_code(x, self.codewords, metric=self.metric, chunk=self.chunk)
 
-    def forward(self, x: torch.Tensor, weight: torch.Tensor | None = None) -> tuple[torch.Tensor, torch.Tensor]:
-        codes, q, update = self.plan_step(x, weight)
+    def forward(
+        self, x: torch.Tensor, weight: torch.Tensor | None = None, codes: torch.Tensor | None = None
+    ) -> tuple[torch.Tensor, torch.Tensor]:
+        codes, q, update = self.plan_step(x, weight, codes=codes)
         if update is not None:
             self.commit_step(update)
         return codes, q
 
     def plan_step(
-        self, x: torch.Tensor, weight: torch.Tensor | None = None, start: StepUpdate | None = None
+        self,
+        x: torch.Tensor,
+        weight: torch.Tensor | None = None,
+        start: StepUpdate | None = None,
+        codes: torch.Tensor | None = None,
     ) -> tuple[torch.Tensor, torch.Tensor, StepUpdate | None]:
         """Codes ``[n]``, codewords ``[n, code_dim]`` and, in training, the update not yet applied.
 
@@ -156,19 +164,25 @@ class Codebook(nn.Module):
         when all stages succeeded, so a failing step changes no stage.
         ``start`` is an update planned before (the multi-stage layer's k-means
         fit of several batches); this step's learning is added to it.
+        ``codes`` (int64 ``[n]``), when given, replace the nearest-code search
+        (for example codes found by beam search).
         """
         if x.ndim != 2 or x.shape[1] != self.code_dim:
             raise fail("x", f"of shape [n, {self.code_dim}]", f"shape {tuple(x.shape)}")
+        if codes is not None and (codes.shape != (x.shape[0],) or codes.dtype != torch.int64):
+            raise fail("codes", f"int64 of shape [{x.shape[0]}]", f"{codes.dtype} of shape {tuple(codes.shape)}")
         if weight is None:
             weight = torch.ones(x.shape[0], dtype=torch.bool, device=x.device)
         if not self.training:
-            codes, _ = self.search(x)
+            if codes is None:
+                codes, _ = self.search(x)
             return codes, F.embedding(codes, self.codewords.float()), None
         update = StepUpdate() if start is None else start
         if not bool(self.initialised) and "initialised" not in update.values:
             self._plan_init(x[weight], update)
         current = update.values.get("codewords", self.codewords.detach())
-        codes, _ = nearest_code(x, current, metric=self.metric, chunk=self.chunk)
+        if codes is None:
+            codes, _ = nearest_code(x, current, metric=self.metric, chunk=self.chunk)
         table = self.codewords.float()
         if "codewords" in update.values:  # initialised in this step: the new values, gradient still to the parameter
             table = table + (current.float() - table).detach()

@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 import math
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Literal
 
 import torch
 import torch.nn.functional as F
@@ -17,8 +17,10 @@ from ._checks import check_choice, check_features, check_float, check_int, check
 from .bitrate import bitrate as _bitrate
 from .bitrate import bits_per_vector as _bits_per_vector
 from .codebook import Codebook, Init, StepUpdate, Update, same_subset
-from .ema import moving_average_
+from .ema import moving_average_, smoothed_codewords
 from .health import HealthReport, StageStatistics, health_report
+from .refine import FitMethod, refine_codebooks
+from .rotation import ESTIMATORS, rotation_trick, straight_through
 from .search import Metric, beam_encode, nearest_code
 
 # Bounds that keep a layer (or a file that declares one) from exhausting memory.
@@ -32,6 +34,8 @@ MAX_LOOKUP_NORM = 4e18
 _LAYOUT_NUMBERS = ("dim", "entries", "code_dim")
 _LAYOUT_CHOICES = {"update": ("ema", "gradient"), "metric": ("l2", "cosine")}
 
+Estimator = Literal["straight_through", "rotation"]
+
 
 @dataclass
 class QuantizerOutput:
@@ -39,7 +43,8 @@ class QuantizerOutput:
 
     Attributes:
         quantized: same shape and dtype as the input; the gradient reaches
-            the input unchanged (straight-through estimator).
+            the input unchanged (straight-through estimator) or through the
+            rotation trick (``estimator="rotation"``).
         codes: int64 ``[..., stages]`` (the input's shape without its feature
             axis, then one code per stage); ``-1`` marks a stage that stage
             dropout left out for that vector.
@@ -84,6 +89,17 @@ class MultiStageQuantizer(nn.Module):
         axis: the feature axis of the input (``1`` for ``[batch, channels, time]``).
         chunk: rows per distance block (bounds memory).
         eps: count smoothing of the EMA update.
+        train_beam: beam width of the encoding inside ``forward`` (training
+            and eval): the EMA statistics, losses and output use the codes
+            that ``encode(x, stages=k, beam=train_beam)`` gives, for each
+            vector's stage count ``k``; 1 = greedy. The first training batch
+            (k-means initialisation) is encoded greedily.
+        estimator: how the gradient crosses the quantizer:
+            ``"straight_through"`` copies it to the lookup-space input ``z``;
+            ``"rotation"`` (Fifty et al., ICLR 2025) carries ``z`` onto the sum
+            of its chosen codewords by a rotation and rescaling held constant
+            in the backward pass (applied once, to the whole lookup-space
+            vector, not per stage). The forward value is the same.
 
     The loss is ``beta * sum_k mse(r_k, sg(q_k))`` over stages (each term a
     mean over the vector's elements and the real, undropped vectors), plus
@@ -119,6 +135,8 @@ class MultiStageQuantizer(nn.Module):
         axis: int = -1,
         chunk: int = 4096,
         eps: float = 1e-5,
+        train_beam: int = 1,
+        estimator: Estimator = "straight_through",
     ) -> None:
         super().__init__()
         self.dim = check_int("dim", dim, 1, MAX_DIM)
@@ -139,6 +157,8 @@ class MultiStageQuantizer(nn.Module):
         self.axis = check_int("axis", axis, -(2**31))
         self.chunk = check_int("chunk", chunk, 1)
         self.init_batches = check_int("init_batches", init_batches, 1)
+        self.train_beam = check_int("train_beam", train_beam, 1)
+        self.estimator = check_choice("estimator", estimator, ESTIMATORS)
         self.codebooks = nn.ModuleList(
             Codebook(
                 entries,
@@ -178,6 +198,8 @@ class MultiStageQuantizer(nn.Module):
             "axis": self.axis,
             "chunk": self.chunk,
             "eps": first.eps,
+            "train_beam": self.train_beam,
+            "estimator": self.estimator,
         }
         if self.code_dim < dim:
             self.project_in: nn.Module = nn.Linear(dim, self.code_dim)
@@ -291,6 +313,7 @@ class MultiStageQuantizer(nn.Module):
 
         total = torch.zeros_like(residual)
         codes = torch.full((rows.shape[0], n_use), -1, dtype=torch.int64, device=rows.device)
+        searched = self._beam_codes(residual, counts, n_use)
         loss = residual.new_zeros(())
         chain = _ChainStats.empty(n_use, residual.device)
         signal = (residual.detach() ** 2).sum(-1)
@@ -303,7 +326,8 @@ class MultiStageQuantizer(nn.Module):
                 q, update = F.embedding(stage_codes, self.codebooks[s].codewords.float()), None
             else:
                 start = init_plan.updates[s] if init_plan is not None and init_plan.updates is not None else None
-                stage_codes, q, update = self.codebooks[s].plan_step(residual, learn, start)
+                given = None if searched is None else searched[:, s].clamp_min(0)
+                stage_codes, q, update = self.codebooks[s].plan_step(residual, learn, start, codes=given)
             updates.append(update)
             q = q * used.unsqueeze(1)
             codes[:, s] = torch.where(used, stage_codes, torch.full_like(stage_codes, -1))
@@ -327,9 +351,9 @@ class MultiStageQuantizer(nn.Module):
                 if init_plan is not None:
                     self._commit_collection(init_plan, n_use)
 
-        # Straight-through: the value is the codeword sum, the gradient goes to z unchanged.
-        zf = z.float()
-        out = self._project_out(zf + (total - zf).detach())
+        # The value is the codeword sum; the gradient goes to z straight through or by the rotation trick.
+        carry = rotation_trick if self.estimator == "rotation" else straight_through
+        out = self._project_out(carry(z.float(), total))
         return QuantizerOutput(
             quantized=self._unflatten(out, lead).to(x.dtype),
             codes=codes.reshape(*lead, n_use),
@@ -424,6 +448,22 @@ class MultiStageQuantizer(nn.Module):
         return self.project_out(rows)
 
     @torch.no_grad()
+    def _beam_codes(self, z: torch.Tensor, counts: torch.Tensor, n_use: int) -> torch.Tensor | None:
+        """Beam-search codes ``[n, n_use]`` (-1 past each row's stage count), or None for greedy.
+
+        None while ``train_beam`` is 1 or a used codebook is not yet initialised.
+        Rows with ``k`` stages get ``encode``'s beam codes for ``k`` stages.
+        """
+        if self.train_beam == 1 or not all(bool(cb.initialised) for cb in self.codebooks[:n_use]):
+            return None
+        out = torch.full((z.shape[0], n_use), -1, dtype=torch.int64, device=z.device)
+        books = [cb.codewords for cb in self.codebooks[:n_use]]
+        for k in torch.unique(counts).tolist():
+            rows = counts == k
+            out[rows, :k] = beam_encode(z[rows], books[:k], beam=self.train_beam, chunk=self.chunk)
+        return out
+
+    @torch.no_grad()
     def _commit_chain(self, chain: _ChainStats) -> None:
         """Fold one step's per-stage figures into the moving averages (energy left, commitment).
 
@@ -500,6 +540,88 @@ class MultiStageQuantizer(nn.Module):
             c = flat[:, s]
             total = total + self.codebooks[s].lookup(c.clamp_min(0)) * (c >= 0).unsqueeze(1)
         return self._unflatten(self._project_out(total), lead).to(self.dtype_probe.dtype)
+
+    # ------------------------------------------------------------- refinement
+    def _encode_with(self, z: torch.Tensor, books: list[torch.Tensor], beam: int) -> torch.Tensor:
+        """Codes ``[n, len(books)]`` of lookup-space ``z`` ``[n, code_dim]`` with the given codewords."""
+        if beam > 1:
+            return beam_encode(z, books, beam=beam, chunk=self.chunk)
+        codes = torch.empty(z.shape[0], len(books), dtype=torch.int64, device=z.device)
+        residual = z.float()
+        for s, c in enumerate(books):
+            codes[:, s], _ = nearest_code(residual, c, metric=self.metric, chunk=self.chunk)
+            residual = residual - c.float()[codes[:, s]]
+        return codes
+
+    @torch.no_grad()
+    def refine(
+        self,
+        data: torch.Tensor,
+        *,
+        rounds: int = 3,
+        beam: int = 1,
+        method: FitMethod = "auto",
+        chunk: int = 65536,
+    ) -> list[float]:
+        """Re-fit all stages' codewords jointly to ``data`` with the codes fixed, re-encode; a few rounds.
+
+        Works in the lookup space (after ``project_in``, which is not changed).
+        Each round solves for the codewords of every stage at once that
+        minimise the total squared error of ``data`` for its current codes
+        (:func:`rvqlayer.refine.fit_codewords`; memory bounded by ``chunk``
+        rows and the number of codewords, not by the size of ``data``), then
+        encodes ``data`` again with ``beam`` (1 = greedy); a round that does
+        not lower that error is dropped, so the error on ``data`` never rises.
+        Codebooks not yet initialised are first fitted by k-means, stage by
+        stage. Afterwards the usage counts are those of the new codes (scaled
+        to the previous total count), and for EMA layers the running sums are
+        set so that the next EMA update starts from the refined codewords.
+        Meant for offline use (a frozen encoder) on one process.
+
+        Args:
+            data: float tensor with ``dim`` features on ``axis``.
+            rounds: at most this many rounds (>= 0).
+            beam: beam width of the encoder the codewords are refined for.
+            method: ``"auto"``, ``"joint"`` or ``"alternating"`` (see
+                :func:`rvqlayer.refine.fit_codewords`).
+            chunk: rows per block when accumulating.
+
+        Returns:
+            the mean squared error per lookup element on ``data`` before, then
+            after each kept round.
+        """
+        check_features("data", data, self.dim, self.axis)
+        check_int("rounds", rounds, 0)
+        check_int("beam", beam, 1)
+        check_choice("method", method, ("auto", "joint", "alternating"))
+        check_int("chunk", chunk, 1)
+        rows, _ = self._flatten(data)
+        if rows.shape[0] == 0:
+            raise fail("data", "at least one vector", "none")
+        z = _finite_lookup_input(self._project_in(rows))
+        residual = z
+        for cb in self.codebooks:
+            if not bool(cb.initialised):
+                cb.initialise(residual)
+            residual = residual - cb.lookup(cb.search(residual)[0])
+        books = [cb.codewords.detach().float() for cb in self.codebooks]
+        result = refine_codebooks(
+            z, books, lambda x, b: self._encode_with(x, b, beam), rounds=rounds, method=method, chunk=chunk
+        )
+        for s, cb in enumerate(self.codebooks):
+            usage = torch.bincount(result.codes[:, s], minlength=cb.entries).float()
+            total = float(cb.ema_count.sum())
+            usage = usage * (total / rows.shape[0]) if total > 0 else usage
+            cb.ema_count.copy_(usage)
+            cb.usage_count.copy_(usage)
+            cb.codewords.data.copy_(result.codebooks[s].to(cb.codewords.dtype))
+            if cb.update == "ema":
+                # sums such that the layer's own formula m / N~ gives back the refined codewords
+                per_count = smoothed_codewords(cb.ema_count, torch.ones_like(cb.ema_count).unsqueeze(1), cb.eps)
+                cb.ema_sum.copy_(result.codebooks[s] / per_count)
+            else:
+                cb.previous_codewords.copy_(cb.codewords.detach())
+        return result.errors
 
     # ------------------------------------------------------------------ health
     def stage_statistics(self, codes: torch.Tensor | None = None) -> list[StageStatistics]:

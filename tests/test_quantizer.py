@@ -373,6 +373,8 @@ def test_config_rebuilds_an_identical_layer():
         axis=1,
         chunk=128,
         eps=1e-4,
+        train_beam=4,
+        estimator="rotation",
     )
     q = MultiStageQuantizer(**options)
     assert q.config() == options

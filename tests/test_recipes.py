@@ -501,3 +501,24 @@ def test_default_code_dims_match_the_models():
 
     assert tones.DEFAULTS["code_dim"] == tones.LATENT
     assert digits.DEFAULTS["code_dim"] == digits.LATENT
+
+
+def test_embeddings_table_shows_the_gaussian_bound(embeddings_run):
+    # Reverse water-filling (Cover & Thomas, Elements of Information Theory, 2nd ed. 2006, Thm 10.3.3)
+    # on the eigenvalues of the data's covariance, as an SNR against the same centred energy.
+    from recipes.embeddings import DEMO, demo_features
+
+    out, rc, _ = embeddings_run
+    assert rc == 0
+    rows = _assert_table(out, 6, {"bound SNR": True})
+    n, dim, comps = DEMO[True]
+    x = demo_features(0, n, dim, comps).astype(np.float64)
+    lam = np.linalg.eigvalsh(np.cov(x.T, bias=True))
+    for row in rows:
+        theta_lo, theta_hi = 1e-300, float(lam.max())
+        for _ in range(3000):  # bisection on theta: sum max(0, 1/2 log2(l / theta)) = bits
+            mid = math.sqrt(theta_lo * theta_hi)
+            rate = sum(0.5 * math.log2(v / mid) for v in lam if v > mid)
+            theta_lo, theta_hi = (mid, theta_hi) if rate > row["bits_per_vector"] else (theta_lo, mid)
+        bound = np.minimum(theta_hi, lam).sum()
+        assert row["bound SNR"] == pytest.approx(10 * math.log10(lam.sum() / bound), abs=1e-6)

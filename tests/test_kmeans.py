@@ -30,9 +30,20 @@ def test_fit_recovers_separated_centres():
     torch.manual_seed(1)
     x, centres = _blobs(1)
     fit = fit_kmeans(x, 6, iters=10, restarts=3)
-    gap = torch.cdist(fit.centroids, centres).min(1).values
-    assert float(gap.max()) < 0.02
     assert fit.counts.tolist() == [200.0] * 6
+    # Each blob is one cluster, so each centroid is that blob's sample mean (the k-means optimum
+    # for this partition). How far a sample mean lies from the true centre is sampling noise of
+    # the data, not a property of the code, so only a loose distance is asserted. Tolerance: float32
+    # summation of n values errs by at most (n - 1) u sum|x_i|, u = 2^-24 (N. J. Higham, "Accuracy
+    # and Stability of Numerical Algorithms", 2nd ed. 2002, section 4.2, from memory); divided by n,
+    # plus one rounding of the division, that is at most n u max|x_i|.
+    blob_means = x.double().reshape(6, 200, 3).mean(1)
+    nearest = torch.cdist(fit.centroids.double(), blob_means).argmin(1)
+    assert sorted(nearest.tolist()) == list(range(6))
+    tol = 200 * 2.0**-24 * float(x.abs().max())
+    torch.testing.assert_close(fit.centroids.double(), blob_means[nearest], atol=tol, rtol=0.0)
+    gap = torch.cdist(fit.centroids, centres).min(1).values  # a sample mean is ~0.006 off; centres ~4 apart
+    assert float(gap.max()) < 0.1
     # expected cost of the blobs: d * spread^2 per point
     assert math.isclose(fit.mse, 3 * 0.05**2, rel_tol=0.15)
 

@@ -14,11 +14,18 @@ Why the settings are what they are (measured on this code, not tuned to pass):
   lands above the optimum (8 Gaussian levels fitted on 1024 points: +6% on
   average, up to +21%, over 20 seeds) and the EMA needs many steps to average
   it away: after 300 steps at the default decay 0.99, 6 of 20 seeds are still
-  more than 3% above Max's table; after 2000 steps none of 50 is.
+  more than 3% above Max's table; after 2000 steps none of 50 is. That is not
+  enough margin by the rule for quality assertions (DEVELOPERS.md): after 2000
+  steps of 1024 at decay 0.99, over seeds 0-4 the 8-level MSE read -0.13% to
+  +0.78% of the table (margin 2.2% to the 3% bound, 2.4 times the spread) and
+  the largest 4-level error 0.008-0.026 (margin 0.024 to 0.05, 1.3 times).
+  The Gaussian checks therefore use decay 0.95 on batches of 4096: 2000 steps
+  then amount to about 100 Lloyd steps, each averaged over about 80k samples.
 - The 2-D check at 256 entries would need several thousand steps at decay
   0.99 (G = 0.0839-0.0844 after 600 steps of 4096 vectors, still above the
-  square lattice), so it uses decay 0.9: 600 steps then amount to about 60
-  averaged Lloyd steps.
+  square lattice), so it uses decay 0.9. After 600 steps (about 60 averaged
+  Lloyd steps) G read 0.0822-0.0826 over seeds 0-4, only 1.6 times the spread
+  below 1/12; after 1800 steps 0.0818-0.0821 (margin 4.4 times the spread).
 """
 
 from __future__ import annotations
@@ -80,15 +87,16 @@ LLOYD_MAX_MSE = {2: 0.3634, 4: 0.1175, 8: 0.03454}
 # Positive output levels from the same table (the levels are symmetric about 0).
 LLOYD_MAX_LEVELS = {2: [0.7979], 4: [0.4528, 1.5104], 8: [0.2451, 0.7560, 1.3439, 2.1519]}
 SCALAR_STEPS, SCALAR_BATCH = 2000, 1024
+GAUSSIAN_DECAY, GAUSSIAN_BATCH = 0.95, 4096
 
 
 @pytest.mark.parametrize("entries", [2, 4, 8])
 def test_scalar_gaussian_reaches_lloyd_max(entries: int) -> None:
     q = _train(
-        MultiStageQuantizer(1, stages=1, entries=entries),
+        MultiStageQuantizer(1, stages=1, entries=entries, ema_decay=GAUSSIAN_DECAY),
         _gaussian(1),
         steps=SCALAR_STEPS,
-        batch=SCALAR_BATCH,
+        batch=GAUSSIAN_BATCH,
         seed=20 + entries,
     )
     mse = _held_out_mse(q, _gaussian(1), 1 << 20)
@@ -173,38 +181,52 @@ def _mixture(seed: int, *, k: int = 12, dim: int = 4, n: int = 3000, spread: flo
     return centres[labels] + torch.randn(n, dim, generator=g)
 
 
+MIXTURE_SEEDS = (0, 1, 2, 3, 4)
+
+
 @pytest.mark.parametrize("path", ["exact", "summary"])
-@pytest.mark.parametrize("seed", [0, 1, 2, 3, 4])
 @pytest.mark.parametrize("k", [12, 24])
-def test_kmeans_init_matches_scikit_learn(k: int, seed: int, path: str, monkeypatch: pytest.MonkeyPatch) -> None:
+def test_kmeans_init_matches_scikit_learn(k: int, path: str, monkeypatch: pytest.MonkeyPatch) -> None:
     # 12 components: k = 12 fails when a component is left without a code; k = 24 (two codes
     # per component) compares the quality of the local optimum each finds inside components.
     # "summary" forces the path large fits take (seeding on a k-means|| summary, then Lloyd
     # on all points); these 3000 points would otherwise be fitted exactly.
     if path == "summary":
         monkeypatch.setattr(rvqlayer.kmeans, "_SUMMARY_ABOVE", 0)
-    x = _mixture(seed, k=12)
-    x64 = x.double().numpy()
-    # Reference: scikit-learn KMeans (k-means++ seeding, Arthur & Vassilvitskii, SODA 2007),
-    # best of 3 runs. inertia_ is the SUM of squared distances, so inertia_ / n is the
-    # mean over points of the squared distance summed over dimensions.
-    reference = KMeans(n_clusters=k, n_init=3, init="k-means++", random_state=seed).fit(x64)
-    ref_mse = reference.inertia_ / x.shape[0]
+    fit_ratios, init_ratios = [], []
+    for seed in MIXTURE_SEEDS:
+        x = _mixture(seed, k=12)
+        x64 = x.double().numpy()
+        # Reference: scikit-learn KMeans (k-means++ seeding, Arthur & Vassilvitskii, SODA 2007),
+        # best of 3 runs. inertia_ is the SUM of squared distances, so inertia_ / n is the
+        # mean over points of the squared distance summed over dimensions.
+        reference = KMeans(n_clusters=k, n_init=3, init="k-means++", random_state=seed).fit(x64)
+        ref_mse = reference.inertia_ / x.shape[0]
 
-    torch.manual_seed(seed)
-    fit = fit_kmeans(x, k)
-    fit_mse = _sq_error_per_point(x64, fit.centroids.double().numpy())
-    assert fit.mse == pytest.approx(fit_mse, rel=1e-4)  # same convention as inertia_ / n
-    _show(f"fit_kmeans MSE, k={k}, seed {seed}", fit_mse, f"KMeans inertia_/n = {ref_mse:.6g}, at most +5%")
-    assert fit_mse <= 1.05 * ref_mse
+        torch.manual_seed(seed)
+        fit = fit_kmeans(x, k)
+        fit_mse = _sq_error_per_point(x64, fit.centroids.double().numpy())
+        assert fit.mse == pytest.approx(fit_mse, rel=1e-4)  # same convention as inertia_ / n
 
-    # The Codebook's own initialisation on its first training batch (k-means, then one EMA step).
-    torch.manual_seed(seed)
-    cb = Codebook(k, x.shape[1]).train()
-    cb(x)
-    cb_mse = _sq_error_per_point(x64, cb.codewords.double().numpy())
-    _show(f"Codebook init MSE, k={k}, seed {seed}", cb_mse, f"KMeans inertia_/n = {ref_mse:.6g}, at most +5%")
-    assert cb_mse <= 1.05 * ref_mse
+        # The Codebook's own initialisation on its first training batch (k-means, then one EMA step).
+        torch.manual_seed(seed)
+        cb = Codebook(k, x.shape[1]).train()
+        cb(x)
+        cb_mse = _sq_error_per_point(x64, cb.codewords.double().numpy())
+        fit_ratios.append(fit_mse / ref_mse)
+        init_ratios.append(cb_mse / ref_mse)
+        _show(f"k={k}, mixture {seed}: fit_kmeans / KMeans", fit_ratios[-1], "mean over mixtures <= 1.05")
+        _show(f"k={k}, mixture {seed}: Codebook init / KMeans", init_ratios[-1], "mean over mixtures <= 1.05")
+
+    # Which local optimum a seeded run lands in varies. For k = 24 one run's ratio read 0.986-1.015
+    # (up to 0.018 apart on one mixture over 5 torch seeds): a 5% bound leaves a margin of 0.035,
+    # under 3 times that spread (rule in DEVELOPERS.md). So the bound applies to the mean over the five
+    # mixtures: 0.998-1.004 over 5 sets of torch seeds, the same on 1 and 2 threads (to 1e-14).
+    # For k = 12 every run found all components: ratio 1 to 1e-14 on every seed, so each is bounded.
+    assert float(np.mean(fit_ratios)) <= 1.05, fit_ratios
+    assert float(np.mean(init_ratios)) <= 1.05, init_ratios
+    if k == 12:
+        assert max(fit_ratios + init_ratios) <= 1.05, (fit_ratios, init_ratios)
 
 
 # ------------------------------------------------------------ 2-D, uniform square
@@ -213,7 +235,7 @@ def test_square_codebook_second_moment_between_hexagon_and_square_lattice() -> N
     q = _train(
         MultiStageQuantizer(2, stages=1, entries=entries, ema_decay=0.9),
         _uniform(2),
-        steps=600,
+        steps=1800,
         batch=4096,
         seed=60,
     )

@@ -9,11 +9,13 @@ DEFAULTS = {
     "tones": {"stages": 8, "entries": 256, "code_dim": 32, "steps": 1500, "batch_size": 12},
     "digits": {"stages": 4, "entries": 64, "code_dim": 32, "steps": 3000, "batch_size": 128},
     "embeddings": {"stages": 6, "entries": 128, "code_dim": None, "steps": 240, "batch_size": 1024},
+    "speech": {"stages": 8, "entries": 256, "code_dim": 32, "steps": 1200, "batch_size": 12},
 }
 QUICK = {
     "tones": {"steps": 120, "batch_size": 8},
     "digits": {"steps": 300},
     "embeddings": {"steps": 60},
+    "speech": {"steps": 60, "batch_size": 8},
 }
 
 

@@ -120,7 +120,9 @@ def synthesise(utterances: list[Utterance]) -> list[np.ndarray]:
     for pair in range(0, len(chunks), 2):
         running = []
         for chunk in chunks[pair : pair + 2]:
-            proc = subprocess.Popen(command, stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env)
+            proc = subprocess.Popen(
+                command, stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env
+            )
             request = json.dumps([dataclasses.astuple(u) for u in chunk]).encode()
             running.append((proc, request))
         for proc, request in running:

@@ -1,7 +1,7 @@
 #!/usr/bin/env python3
 """Set up a virtual environment and run the main job or the tests.
 
-    python3 tasks.py main    # set up, then train the `tones` recipe and print its rate-quality table
+    python3 tasks.py main    # set up, then train the `speech` recipe and print its rate-quality table
     python3 tasks.py test    # set up, then run the test suite
 
 Only python3 is needed. The environment lives in ``.venv`` (``RVQLAYER_VENV``
@@ -50,7 +50,7 @@ def main(argv: list[str]) -> int:
     extra = argv[1:]
     try:
         if argv[0] == "main":
-            _run(py, "-m", "recipes.cli", "tones", *extra)
+            _run(py, "-m", "recipes.cli", "speech", *extra)
         else:
             _run(py, "-m", "pytest", "-q", *extra)
     except subprocess.CalledProcessError as exc:

@@ -21,10 +21,10 @@ from ._defaults import describe
 PROG = "rvqlayer-recipe"
 RECIPES = ("tones", "digits", "embeddings", "speech")
 _SUMMARIES = {
-    "tones": "the main job: a small audio codec on synthetic 16 kHz tones, noise bursts and pauses",
+    "tones": "a small audio codec on synthetic 16 kHz tones, noise bursts and pauses",
     "digits": "scikit-learn's bundled 8x8 handwritten digits through a small autoencoder",
     "embeddings": "a quantizer fitted directly to pre-computed feature vectors (.npy or .pt)",
-    "speech": "a small speech codec at 16 kHz judged by PESQ and STOI; synthetic speech or --data DIR",
+    "speech": "the main job: a small speech codec at 16 kHz judged by PESQ and STOI (synthetic or --data DIR)",
 }
 _TAKES_DATA = ("embeddings", "speech")
 # Settings that fix the model's shape or its data stream: a resumed run must keep them.

@@ -1,4 +1,4 @@
-"""``tones``: a small neural audio codec trained on synthetic 16 kHz audio (the main job).
+"""``tones``: a small neural audio codec trained on synthetic 16 kHz audio.
 
 A strided 1-D convolution (a learned analysis filterbank: 128-sample windows,
 hop 64) turns the waveform into 250 frames a second, two residual

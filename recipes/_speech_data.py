@@ -39,12 +39,13 @@ def synthetic(seed: int, train_utterances: int, held_out_clips: int) -> SpeechAu
     """eSpeak NG utterances: training sentences and voices, and held-out ones (see ``_speech_synth``)."""
     train = _speech_synth.draw_utterances(seed, False, train_utterances)
     held = _speech_synth.draw_utterances(seed, True, held_out_clips)
-    clips = _speech_synth.synthesise(train + held)
-    clips = [_peak(c, SYNTH_LEVEL) for c in clips]
+    # Rendered apart, so the held-out audio does not depend on how many training utterances there are.
+    train_clips = [_peak(c, SYNTH_LEVEL) for c in _speech_synth.synthesise(train)]
+    held_clips = [_peak(c, SYNTH_LEVEL) for c in _speech_synth.synthesise(held)]
     voices = sorted({u.voice.split("+")[1] for u in held})
     return SpeechAudio(
-        clips[: len(train)],
-        clips[len(train) :],
+        train_clips,
+        held_clips,
         f"eSpeak NG speech: {len(train)} training utterances, {len(held)} held-out ones "
         f"(sentences and voice variants {', '.join(voices)} never seen in training)",
     )

@@ -228,20 +228,20 @@ def _cell(value: float, name: str) -> str:
 
 
 def entropy_coded_kbps(quantizer: MultiStageQuantizer, codes: list[torch.Tensor], seconds: float) -> float | None:
-    """kbps of the held-out codes ``[1, frames, k]`` once entropy-coded, or None.
+    """kbps of the held-out codes (a list of ``[1, frames, k]``) written as one entropy-coded stream, or None.
 
-    Hook for ``rvqlayer.stream`` (range coding with the quantizer's usage
-    tables): until that module exists the column stays empty ("-").
+    The hook for ``rvqlayer.stream`` (range coding with the quantizer's usage
+    tables): the size of the whole stream, headers included, over the clips'
+    duration. Without that module the column stays empty ("-").
     """
     try:
         from rvqlayer import stream  # type: ignore[attr-defined]
     except ImportError:
         return None
     tables = stream.UsageTables.from_quantizer(quantizer)
-    size = sum(
-        len(stream.write_stream(c[0], entries=quantizer.entries, tables=tables, frame_rate=FRAME_RATE)) for c in codes
-    )
-    return 8 * size / seconds / 1000.0
+    frames = torch.cat([c[0] for c in codes])  # [all frames, k]
+    blob = stream.write_stream(frames, entries=quantizer.entries, tables=tables, frame_rate=FRAME_RATE)
+    return 8 * len(blob) / seconds / 1000.0
 
 
 # ---------------------------------------------------------------- training

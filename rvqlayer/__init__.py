@@ -18,7 +18,7 @@ try:
     from .health import HealthReport, StageHealth
     from .kmeans import KMeansResult, fit_kmeans
     from .quantizer import MultiStageQuantizer, QuantizerOutput
-    from .search import beam_encode, nearest_code
+    from .search import beam_encode, greedy_encode, nearest_code
 except ModuleNotFoundError as exc:  # torch absent: the numpy-only modules still import
     if exc.name != "torch":
         raise
@@ -35,6 +35,7 @@ __all__ = [
     "bitrate",
     "bits_per_vector",
     "fit_kmeans",
+    "greedy_encode",
     "load_codebooks",
     "nearest_code",
     "save_codebooks",

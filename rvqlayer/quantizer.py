@@ -21,7 +21,7 @@ from .ema import moving_average_, smoothed_codewords
 from .health import HealthReport, StageStatistics, health_report
 from .refine import FitMethod, refine_codebooks
 from .rotation import ESTIMATORS, rotation_trick, straight_through
-from .search import Metric, beam_encode, nearest_code
+from .search import Metric, beam_encode, greedy_encode, nearest_code
 
 # Bounds that keep a layer (or a file that declares one) from exhausting memory.
 MAX_DIM = 2**16
@@ -460,7 +460,7 @@ class MultiStageQuantizer(nn.Module):
         books = [cb.codewords for cb in self.codebooks[:n_use]]
         for k in torch.unique(counts).tolist():
             rows = counts == k
-            out[rows, :k] = beam_encode(z[rows], books[:k], beam=self.train_beam, chunk=self.chunk)
+            out[rows, :k] = beam_encode(z[rows], books[:k], beam=self.train_beam, metric=self.metric, chunk=self.chunk)
         return out
 
     @torch.no_grad()
@@ -493,21 +493,20 @@ class MultiStageQuantizer(nn.Module):
     def encode(self, x: torch.Tensor, stages: int | None = None, beam: int = 1) -> torch.Tensor:
         """Codes int64 ``[..., stages]`` for ``x``; no learning, deterministic.
 
-        ``beam > 1`` searches over stages for the path of least squared error
-        (beam search) instead of choosing greedily stage by stage.
+        ``beam > 1`` searches over stages (beam search, see
+        :func:`~rvqlayer.search.beam_encode`; by ``metric``) instead of choosing
+        greedily stage by stage (:func:`~rvqlayer.search.greedy_encode`).
         """
         check_features("x", x, self.dim, self.axis)
         n_use = self._check_stages(stages)
         check_int("beam", beam, 1)
         rows, lead = self._flatten(x)
         z = _finite_lookup_input(self._project_in(rows))
+        books = [cb.codewords for cb in self.codebooks[:n_use]]
         if beam > 1:
-            codes = beam_encode(z, [cb.codewords for cb in self.codebooks[:n_use]], beam=beam, chunk=self.chunk)
+            codes = beam_encode(z, books, beam=beam, metric=self.metric, chunk=self.chunk)
         else:
-            codes = torch.empty(rows.shape[0], n_use, dtype=torch.int64, device=rows.device)
-            for s in range(n_use):
-                codes[:, s], _ = self.codebooks[s].search(z)
-                z = z - self.codebooks[s].lookup(codes[:, s])
+            codes = greedy_encode(z, books, metric=self.metric, chunk=self.chunk)
         return codes.reshape(*lead, n_use)
 
     @torch.no_grad()
@@ -545,7 +544,7 @@ class MultiStageQuantizer(nn.Module):
     def _encode_with(self, z: torch.Tensor, books: list[torch.Tensor], beam: int) -> torch.Tensor:
         """Codes ``[n, len(books)]`` of lookup-space ``z`` ``[n, code_dim]`` with the given codewords."""
         if beam > 1:
-            return beam_encode(z, books, beam=beam, chunk=self.chunk)
+            return beam_encode(z, books, beam=beam, metric=self.metric, chunk=self.chunk)
         codes = torch.empty(z.shape[0], len(books), dtype=torch.int64, device=z.device)
         residual = z.float()
         for s, c in enumerate(books):

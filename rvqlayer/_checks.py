@@ -53,6 +53,16 @@ def check_float(
     return value
 
 
+def all_finite(x: torch.Tensor) -> bool:
+    """True when ``x`` holds no NaN or Inf: its minimum and maximum are finite (NaN propagates).
+
+    One reduction pass and no temporary the size of ``x`` (``isfinite(x).all()``
+    made about 1.75 x the input's size in temporaries).
+    """
+    low, high = torch.aminmax(x)
+    return bool(torch.isfinite(low) & torch.isfinite(high))
+
+
 def check_features(arg: str, x: Any, dim: int, axis: int) -> None:
     """Check that ``x`` is a finite float tensor with ``dim`` features on ``axis``."""
     if not isinstance(x, torch.Tensor):
@@ -65,7 +75,7 @@ def check_features(arg: str, x: Any, dim: int, axis: int) -> None:
         raise fail(arg, f"of size {dim} on axis {axis}", f"shape {tuple(x.shape)}")
     if torch.compiler.is_compiling():  # traced (torch.compile, torch.export, ONNX): no value-reading checks
         return
-    if x.numel() and not bool(torch.isfinite(x).all()):
+    if x.numel() and not all_finite(x):
         bad = int((~torch.isfinite(x)).sum())
         raise fail(arg, "finite (no NaN or Inf)", f"{bad} non-finite values")
 

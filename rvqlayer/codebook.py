@@ -187,6 +187,7 @@ class Codebook(nn.Module):
         if "codewords" in update.values:  # initialised in this step: the new values, gradient still to the parameter
             table = table + (current.float() - table).detach()
         q = F.embedding(codes, table)
+        update.lookup = table.detach().clone()
         self._plan_learning(x.detach(), codes, weight, update)
         return codes, q, update
 
@@ -251,7 +252,7 @@ class Codebook(nn.Module):
     @torch.no_grad()
     def _plan_learning(self, x: torch.Tensor, codes: torch.Tensor, weight: torch.Tensor, update: StepUpdate) -> None:
         k, d = self.entries, self.code_dim
-        counts, sums = assignment_stats(x, codes, weight.float(), k)
+        counts, sums = assignment_stats(x, codes, weight, k)
         if self.update == "ema":
             packed = _dist.all_reduce_sum(torch.cat([counts, sums.flatten()]))
             counts, sums = packed[:k], packed[k:].view(k, d)
@@ -276,7 +277,7 @@ class Codebook(nn.Module):
         below = max(self.reseed_below, float(self.pending_reseed))
         values["pending_reseed"] = torch.zeros_like(self.pending_reseed)
         if below > 0:
-            update.reseeded = self._plan_reseed(x[weight], below, count, codewords, values.get("ema_sum"))
+            update.reseeded = self._plan_reseed(x, weight, below, count, codewords, values.get("ema_sum"))
         values["codewords"] = codewords
         if self.update == "ema":
             values["ema_sum"] = ema_sum
@@ -304,24 +305,31 @@ class Codebook(nn.Module):
 
     def _plan_reseed(
         self,
-        rows: torch.Tensor,
+        x: torch.Tensor,
+        weight: torch.Tensor,
         below: float,
         count: torch.Tensor,
         codewords: torch.Tensor,
         ema_sum: torch.Tensor | None,
     ) -> int:
-        """Move dead codes (in the planned ``count``) onto rows of this batch; edits the planned tensors in place."""
+        """Move dead codes (in the planned ``count``) onto rows of ``x`` whose ``weight`` is True.
+
+        Edits the planned tensors in place; reads the rows it picks without copying ``x``.
+        """
         dead = _below_share(count, below)
         n_dead = int(dead.sum())
         if n_dead == 0:
             return 0
-        have = torch.tensor([float(rows.shape[0] > 0)], device=rows.device)
-        if rows.shape[0] > 0:
-            picks = rows[torch.randint(rows.shape[0], (n_dead,), device=rows.device)].float()
-            scale = rows.float().pow(2).mean().sqrt().clamp_min(1e-6)
+        real = weight.nonzero().squeeze(1)
+        have = torch.tensor([float(real.numel() > 0)], device=x.device)
+        if real.numel() > 0:
+            picks = x[real[torch.randint(real.numel(), (n_dead,), device=x.device)]].float()
+            xf = x.float()
+            energy = (torch.einsum("nd,nd->n", xf, xf) * weight).sum() / (real.numel() * x.shape[1])
+            scale = energy.sqrt().clamp_min(1e-6)
             picks = picks + 0.01 * scale * torch.randn_like(picks)
         else:
-            picks = torch.zeros(n_dead, self.code_dim, device=rows.device)
+            picks = torch.zeros(n_dead, self.code_dim, device=x.device)
         _dist.broadcast(have)
         if float(have) == 0.0:
             return 0
@@ -363,8 +371,11 @@ class StepUpdate:
         values: buffer or parameter name -> its new value.
         steps: 1 when the step learned something (0: no real rows anywhere).
         reseeded: codes moved onto batch vectors.
+        lookup: a copy of the codewords this step's codes were chosen from
+            (so a caller can look them up again after the update is written).
     """
 
     values: dict[str, torch.Tensor] = field(default_factory=dict)
     steps: int = 0
     reseeded: int = 0
+    lookup: torch.Tensor | None = None  # the [K, code_dim] float32 codewords the codes index, as they were

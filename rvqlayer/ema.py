@@ -59,7 +59,21 @@ def smoothed_codewords(counts: torch.Tensor, sums: torch.Tensor, eps: float) -> 
 def assignment_stats(
     x: torch.Tensor, codes: torch.Tensor, weight: torch.Tensor, k: int
 ) -> tuple[torch.Tensor, torch.Tensor]:
-    """Per-code count ``[k]`` and sum ``[k, d]`` of rows ``x`` ``[n, d]`` with ``weight`` ``[n]``."""
+    """Per-code count ``[k]`` and sum ``[k, d]`` of rows ``x`` ``[n, d]`` with ``weight`` ``[n]``.
+
+    A bool ``weight`` keeps (True) or drops (False) whole rows without an ``[n, d]``
+    temporary: dropped rows are counted in a spare slot ``k`` that is cut off.
+
+    >>> counts, sums = assignment_stats(torch.tensor([[1.0], [2.0], [4.0]]), torch.tensor([0, 1, 1]),
+    ...                                 torch.tensor([True, False, True]), 2)
+    >>> counts.tolist(), sums.flatten().tolist()
+    ([1.0, 1.0], [1.0, 4.0])
+    """
+    if weight.dtype == torch.bool:
+        slot = torch.where(weight, codes, k)
+        counts = torch.bincount(slot, minlength=k + 1)[:k].float()
+        sums = torch.zeros(k + 1, x.shape[1], dtype=torch.float32, device=x.device)
+        return counts, sums.index_add_(0, slot, x.float())[:k]
     counts = torch.zeros(k, dtype=torch.float32, device=x.device).index_add_(0, codes, weight)
     sums = torch.zeros(k, x.shape[1], dtype=torch.float32, device=x.device)
     sums.index_add_(0, codes, x.float() * weight.unsqueeze(1))

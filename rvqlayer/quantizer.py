@@ -13,14 +13,14 @@ from einops import rearrange
 from torch import nn
 
 from . import distributed as _dist
-from ._checks import check_choice, check_features, check_float, check_int, check_mask, fail
+from ._checks import all_finite, check_choice, check_features, check_float, check_int, check_mask, fail
 from .bitrate import bitrate as _bitrate
 from .bitrate import bits_per_vector as _bits_per_vector
 from .codebook import Codebook, Init, StepUpdate, Update, same_subset
 from .ema import moving_average_, smoothed_codewords
 from .health import HealthReport, StageStatistics, health_report
 from .refine import FitMethod, refine_codebooks
-from .rotation import ESTIMATORS, rotation_trick, straight_through
+from .rotation import ESTIMATORS, rotation_trick
 from .search import Metric, beam_encode, greedy_encode, nearest_code
 
 # Bounds that keep a layer (or a file that declares one) from exhausting memory.
@@ -35,6 +35,70 @@ _LAYOUT_NUMBERS = ("dim", "entries", "code_dim")
 _LAYOUT_CHOICES = {"update": ("ema", "gradient"), "metric": ("l2", "cosine")}
 
 Estimator = Literal["straight_through", "rotation"]
+
+
+def _row_energy(r: torch.Tensor) -> torch.Tensor:
+    """Squared norm of every row ``[n]`` of ``r`` ``[n, d]``, without an ``[n, d]`` temporary."""
+    return torch.einsum("nd,nd->n", r, r)
+
+
+@dataclass
+class _Plan:
+    """What the backward pass of :class:`_Commitment` needs besides tensors autograd tracks.
+
+    ``books``: each stage's codewords as they were when its codes were chosen; ``coefs``:
+    ``2 beta / denom_s`` per stage; ``chunk``: rows recomputed at a time; ``through``:
+    the output's gradient passes to ``z`` here (straight-through estimator).
+    """
+
+    books: list[torch.Tensor]
+    coefs: torch.Tensor
+    chunk: int
+    through: bool = True
+
+
+class _Commitment(torch.autograd.Function):
+    """Commitment loss (and, with ``plan.through``, the straight-through output) as one autograd node.
+
+    Forward returns ``value`` (the codeword sum) and ``commit`` (the commitment
+    loss, computed by the caller). Backward gives ``z`` the output's gradient
+    unchanged (straight-through estimator; only when ``plan.through``) plus ``g * sum_s coef_s w_s r_{s+1}``,
+    the commitment loss's gradient (``r_{s+1} = r_s - q_s`` is the residual after
+    stage ``s``, ``w_s`` its real, undropped rows). The residuals are recomputed
+    from the codes, ``chunk`` rows at a time, with the same operations as the
+    forward pass, so autograd keeps no ``[n, d]`` tensor of its own.
+    """
+
+    @staticmethod
+    def forward(ctx, z, value, commit, codes, real, plan):  # type: ignore[no-untyped-def, override]
+        ctx.set_materialize_grads(False)
+        ctx.save_for_backward(z, codes, real)
+        ctx.plan = plan
+        ctx.mark_non_differentiable(codes)
+        return value.view_as(value), commit.view_as(commit)
+
+    @staticmethod
+    def backward(ctx, grad_value, grad_commit):  # type: ignore[no-untyped-def, override]
+        z, codes, real = ctx.saved_tensors
+        plan: _Plan = ctx.plan
+        if not plan.through:
+            grad_value = None
+        if grad_commit is None or not plan.books:
+            return grad_value, None, None, None, None, None
+        grad = torch.empty_like(z, dtype=torch.float32)
+        with torch.no_grad():
+            for start in range(0, z.shape[0], plan.chunk):
+                rows = slice(start, start + plan.chunk)
+                r = z[rows].detach().float().clone()
+                acc = torch.zeros_like(r)
+                for s, book in enumerate(plan.books):
+                    stage = codes[rows, s]
+                    used = stage >= 0
+                    r.sub_(F.embedding(stage.clamp_min(0), book) * used.unsqueeze(1))
+                    acc.addcmul_(r, ((used & real[rows]) * plan.coefs[s]).unsqueeze(1))
+                acc.mul_(grad_commit)
+                grad[rows] = acc if grad_value is None else acc.add_(grad_value[rows])
+        return grad, None, None, None, None, None
 
 
 @dataclass
@@ -305,19 +369,25 @@ class MultiStageQuantizer(nn.Module):
         if self.training and not self._ranks_checked:
             self._check_ranks()
         z = self._project_in(rows)
-        residual = _finite_lookup_input(z)
-        init_plan = self._plan_collection(residual.detach()[real]) if self.training and self._waiting() else None
+        zf = _finite_lookup_input(z)
+        init_plan = self._plan_collection(zf.detach()[real]) if self.training and self._waiting() else None
         waiting = init_plan is not None and init_plan.updates is None
         stage_count = self._stage_counts(lead, n_use, rows.device)
         counts = stage_count.reshape(-1)
+        dropout = self.training and self.stage_dropout > 0.0
 
-        total = torch.zeros_like(residual)
+        # Autograd sees, per stage, only the codebook term of update="gradient". The commitment
+        # loss is one node (_Commitment) that recomputes the residuals from the codes in backward
+        # and, with the straight-through estimator, also carries the output's gradient: no
+        # [n, code_dim] tensor is kept per stage.
+        residual = zf.detach().clone()
         codes = torch.full((rows.shape[0], n_use), -1, dtype=torch.int64, device=rows.device)
         searched = self._beam_codes(residual, counts, n_use)
         loss = residual.new_zeros(())
+        commit = residual.new_zeros(())
         chain = _ChainStats.empty(n_use, residual.device)
-        signal = (residual.detach() ** 2).sum(-1)
-        updates = []
+        signal = _row_energy(residual)
+        updates, books, coefs = [], [], []
         for s in range(n_use):
             used = counts > s
             learn = used & real
@@ -329,18 +399,23 @@ class MultiStageQuantizer(nn.Module):
                 given = None if searched is None else searched[:, s].clamp_min(0)
                 stage_codes, q, update = self.codebooks[s].plan_step(residual, learn, start, codes=given)
             updates.append(update)
-            q = q * used.unsqueeze(1)
+            lookup = update.lookup if update is not None else None
+            books.append(lookup if lookup is not None else self.codebooks[s].codewords.detach().float().clone())
+            if dropout:
+                q = q * used.unsqueeze(1)
             codes[:, s] = torch.where(used, stage_codes, torch.full_like(stage_codes, -1))
             w = learn.float()
             denom = (w.sum() * self.code_dim).clamp_min(1.0)
-            err = ((residual - q.detach()) ** 2).sum(-1)
-            loss = loss + self.beta * (err * w).sum() / denom
+            coefs.append(2.0 * self.beta / denom)
             if self.update == "gradient":
-                loss = loss + ((((residual.detach() - q) ** 2).sum(-1)) * w).sum() / denom
-            if self.training and not waiting:
-                chain.add(s, squared_error=(err.detach() * w).sum(), rows=w.sum(), energy=(signal * w).sum())
-            total = total + q.detach()
-            residual = residual - q.detach()
+                loss = loss + ((((residual - q) ** 2).sum(-1)) * w).sum() / denom
+            with torch.no_grad():
+                residual.sub_(q)
+                err = _row_energy(residual)
+                commit += self.beta * (err * w).sum() / denom
+                if self.training and not waiting:
+                    chain.add(s, squared_error=(err * w).sum(), rows=w.sum(), energy=(signal * w).sum())
+            del q
         if self.training:
             with torch.no_grad():
                 if not waiting:
@@ -351,13 +426,19 @@ class MultiStageQuantizer(nn.Module):
                 if init_plan is not None:
                     self._commit_collection(init_plan, n_use)
 
-        # The value is the codeword sum; the gradient goes to z straight through or by the rotation trick.
-        carry = rotation_trick if self.estimator == "rotation" else straight_through
-        out = self._project_out(carry(z.float(), total))
+        # The value is the codeword sum z - r (in the residual's storage); the gradient goes to z
+        # straight through or by the rotation trick.
+        value = residual.neg_().add_(zf.detach())
+        through = self.estimator != "rotation"
+        if zf.requires_grad:
+            plan = _Plan(books, torch.stack(coefs) if coefs else residual.new_zeros(0), self.chunk, through)
+            carried, commit = _Commitment.apply(zf, value, commit, codes, real, plan)
+            value = carried if through else rotation_trick(zf, value)
+        out = self._project_out(value)
         return QuantizerOutput(
             quantized=self._unflatten(out, lead).to(x.dtype),
             codes=codes.reshape(*lead, n_use),
-            loss=loss,
+            loss=loss + commit,
             stage_count=stage_count,
         )
 
@@ -714,10 +795,10 @@ def _finite_lookup_input(z: torch.Tensor) -> torch.Tensor:
     """
     lookup = z.float()
     if lookup.numel() and not torch.compiler.is_compiling():  # value-reading checks are for eager callers only
-        if not bool(torch.isfinite(lookup).all()):
+        if not all_finite(lookup):
             bad = int((~torch.isfinite(lookup)).sum())
             raise fail("x", "finite in float32 after the input projection", f"{bad} non-finite values")
-        norms = lookup.detach().pow(2).sum(-1)
+        norms = _row_energy(lookup.detach())
         if not bool((norms <= MAX_LOOKUP_NORM**2).all()):
             raise fail(
                 "x",

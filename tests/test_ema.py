@@ -67,3 +67,15 @@ def test_assignment_stats_respects_weight():
     counts, sums = assignment_stats(x, codes, torch.tensor([1.0, 0.0, 1.0]), 2)
     assert counts.tolist() == [1.0, 1.0]
     assert sums.squeeze(1).tolist() == [1.0, 3.0]
+
+
+def test_assignment_stats_bool_weight_equals_float_weight():
+    g = torch.Generator().manual_seed(3)
+    x = torch.randn(200, 4, generator=g)
+    codes = torch.randint(0, 7, (200,), generator=g)
+    keep = torch.rand(200, generator=g) > 0.3
+    c_bool, s_bool = assignment_stats(x, codes, keep, 7)
+    c_float, s_float = assignment_stats(x, codes, keep.float(), 7)
+    assert c_bool.shape == (7,) and s_bool.shape == (7, 4)
+    torch.testing.assert_close(c_bool, c_float, rtol=0, atol=0)
+    torch.testing.assert_close(s_bool, s_float)

@@ -455,3 +455,64 @@ def test_fully_masked_batches_do_not_count_as_init_data():
     assert int(q.codebooks[0].step) == 0
     q(x)
     assert bool(q.codebooks[0].initialised)
+
+
+@pytest.mark.parametrize("update", ["ema", "gradient"])
+def test_loss_and_gradient_match_the_autograd_formula(update):
+    # The commitment loss's gradient is accumulated in forward (one [n, d] tensor kept);
+    # it must equal autograd through beta * sum_s mean_w ||r_s - sg(q_s)||^2 + the straight-through output.
+    torch.manual_seed(21)
+    q = MultiStageQuantizer(5, stages=3, entries=8, update=update, stage_dropout=0.5, init="random", beta=0.3)
+    x = torch.randn(6, 7, 5)
+    mask = torch.rand(6, 7) > 0.2
+    before = copy.deepcopy(q)
+    xa = x.clone().requires_grad_(True)
+    out = q(xa, mask=mask)
+    (out.loss + (out.quantized * torch.linspace(-1, 1, 5)).sum()).backward()
+
+    xb = x.clone().requires_grad_(True)
+    rows, codes = xb.reshape(-1, 5), out.codes.reshape(-1, 3)
+    real = mask.reshape(-1)
+    r, total, ref = rows, torch.zeros(rows.shape), torch.zeros(())
+    for s, cb in enumerate(before.codebooks):
+        used = codes[:, s] >= 0
+        w = (used & real).float()
+        qs = cb.codewords[codes[:, s].clamp_min(0)] * used.unsqueeze(1)
+        denom = (w.sum() * 5).clamp_min(1.0)
+        ref = ref + 0.3 * (((r - qs.detach()) ** 2).sum(-1) * w).sum() / denom
+        if update == "gradient":
+            ref = ref + (((r.detach() - qs) ** 2).sum(-1) * w).sum() / denom
+        total, r = total + qs.detach(), r - qs.detach()
+    ste = rows + (total - rows).detach()
+    (ref + (ste * torch.linspace(-1, 1, 5)).sum()).backward()
+    torch.testing.assert_close(out.loss, ref)
+    torch.testing.assert_close(xa.grad, xb.grad)
+    torch.testing.assert_close(out.quantized.reshape(-1, 5), total)
+    if update == "gradient":
+        # q's codeword gradient: only the codebook term reaches the codewords.
+        for cb, cb_ref in zip(q.codebooks, before.codebooks):
+            torch.testing.assert_close(cb.codewords.grad, cb_ref.codewords.grad)
+
+
+@pytest.mark.parametrize("bad", [float("nan"), float("inf"), -float("inf")])
+def test_one_non_finite_value_anywhere_is_rejected(bad):
+    q = MultiStageQuantizer(6, stages=2, entries=8)
+    for where in (0, 17, 59):
+        x = torch.randn(10, 6)
+        x.view(-1)[where] = bad
+        with pytest.raises(RvqlayerError, match="finite"):
+            q(x)
+        with pytest.raises(RvqlayerError, match="finite"):
+            q.encode(x)
+
+
+def test_backward_twice_with_retained_graph_gives_twice_the_gradient():
+    torch.manual_seed(22)
+    q = MultiStageQuantizer(6, stages=3, entries=8, init="random")
+    x = torch.randn(40, 6, requires_grad=True)
+    out = q(x)
+    total = out.loss + out.quantized.sum()
+    total.backward(retain_graph=True)
+    once = x.grad.clone()
+    total.backward()
+    torch.testing.assert_close(x.grad, 2 * once)

@@ -97,13 +97,18 @@ def embeddings_run(tmp_path_factory):
 def test_tones_table_has_a_row_per_stage_and_improves(tones_run):
     out, rc, stdout = tones_run
     assert rc == 0
-    rows = _assert_table(out, 8, {"SNR": True})
-    # The log-spectral distance is not guaranteed to fall at every added stage of a briefly trained
-    # model (the README says so); over the whole range it must.
-    assert rows[-1]["LSD"] < rows[0]["LSD"]
+    rows = _assert_table(out, 8, {})
+    # Spread of each asserted figure over seeds 0-4 x 1 and 2 threads (--quick; DEVELOPERS.md has the rule):
+    # SNR gain of stage 2 / 3 / 4: mean 2.06 / 1.26 / 0.89 dB, sd 0.11 / 0.14 / 0.15 (>= 6 sd). Stages 5-8
+    # add 0.21-0.54 dB with sd 0.11-0.17 (under 3 sd), so they are not asserted one by one. All stages
+    # against one: +5.57 dB, sd 0.73; SNR with one stage: 3.61 dB, sd 0.35. The LSD is not asserted: after
+    # 120 steps it rose with more stages in 4 of 5 seeds (LSD8 - LSD1: mean +0.67 dB, sd 0.45).
+    snr = [r["SNR"] for r in rows]
+    assert snr[0] < snr[1] < snr[2] < snr[3], snr
+    assert snr[-1] > snr[0] > 0.0
+    assert all(math.isfinite(r["LSD"]) for r in rows)
     # 250 frames/s, 256 entries = 8 bits per stage: 2 kbps per stage.
     assert [r["rate"] for r in rows] == pytest.approx([2.0 * k for k in range(1, 9)])
-    assert rows[-1]["SNR"] > rows[0]["SNR"] > 0.0
     wav = out / "audio" / "original.wav"
     assert "rate-quality table" in stdout
     assert str(wav) in stdout or os.path.relpath(wav) in stdout  # the summary names the file either way
@@ -175,6 +180,8 @@ def test_tones_table_matches_the_checkpoint(tones_run):
 def test_digits_table_and_grid(digits_run):
     out, rc, stdout = digits_run
     assert rc == 0
+    # Spread over seeds 0-4 x 1 and 2 threads (--quick): MSE drop per added stage 0.0061 / 0.0017 / 0.0006,
+    # sd 0.0002 / 0.0002 / 0.00002 (>= 7 sd); 0.06 - MSE(1 stage) 0.022, sd 0.0009; 0.045 - MSE(4) 0.015, sd 0.0009.
     rows = _assert_table(out, 4, {"MSE": False})
     assert [r["rate"] for r in rows] == [6.0, 12.0, 18.0, 24.0]  # 64 entries = 6 bits per stage, one vector per image
     # Pixels in [0, 1]: the mean image of the whole set gives an MSE of 0.0733 (computed from load_digits);
@@ -192,6 +199,8 @@ def test_embeddings_codes_decode_through_the_saved_codebooks(embeddings_run):
 
     out, rc, _ = embeddings_run
     assert rc == 0
+    # Spread over seeds 0-4 x 1 and 2 threads (--quick): SNR gain per added stage 1.84-2.30 dB, sd <= 0.056;
+    # error share drop per stage 0.26-2.10 points, each >= 9 sd.
     rows = _assert_table(out, 6, {"SNR": True, "error share": False})
     n, dim, comps = DEMO[True]
     x = demo_features(0, n, dim, comps)
@@ -241,6 +250,8 @@ def test_embeddings_from_a_sequence_file(tmp_path, suffix):
         ]
     )
     assert rc == 0, err
+    # Spread (this file, seeds 0-4 x 1 and 2 threads): SNR gain per stage 2.38 / 2.15 dB, sd 0.10 / 0.04;
+    # error share drop 23.8 / 12.7 points, sd 0.8 / 0.4.
     rows = _assert_table(out, 3, {"SNR": True, "error share": False})
     assert [r["rate"] for r in rows] == pytest.approx([0.2, 0.4, 0.6])  # 50 vectors/s * 4 bits per stage
     codes = np.load(out / "codes.npy")
@@ -251,7 +262,12 @@ def test_embeddings_with_learned_projections(tmp_path):
     out = tmp_path / "run"
     rc, _, err = _run(["embeddings", "--quick", "--code-dim", "8", "--steps", "30", "--out", str(out)])
     assert rc == 0, err
-    _assert_table(out, 6, {"SNR": True, "error share": False})
+    rows = _assert_table(out, 6, {})
+    # Spread over seeds 0-4 x 1 and 2 threads: stages 4-6 add 0.005-0.02 dB each, sd 0.0014-0.0063 (3.3-3.8 sd,
+    # 60 steps no better), too close to the rule's 3 sd to assert stage by stage. All stages against one:
+    # SNR +0.22 dB, sd 0.047 (4.8 sd); error share -5.1 points, sd 0.97 (5.3 sd).
+    assert rows[-1]["SNR"] > rows[0]["SNR"] and rows[-1]["error share"] < rows[0]["error share"]
+    assert all(math.isfinite(r["SNR"]) and math.isfinite(r["error share"]) for r in rows)
 
 
 # ---------------------------------------------------------------- resume

@@ -32,8 +32,8 @@ _HELP = {
     "steps": ("N", "training steps in total"),
     "batch_size": ("B", "examples per step"),
     "seed": ("S", "seed of data and model (default 0)"),
-    "data": ("FILE", "embeddings: feature file .npy or .pt, [N, dim] or [N, T, dim]"),
-    "frame_rate": ("HZ", "embeddings: vectors per second, to report kbps"),
+    "data": ("FILE", "feature file .npy or .pt, [N, dim] or [N, T, dim]"),
+    "frame_rate": ("HZ", "vectors per second, to report kbps"),
 }
 
 
@@ -78,6 +78,9 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("name", choices=list(RECIPES), metavar="NAME", help=" | ".join(RECIPES))
     for key, setting in SETTINGS.items():
         metavar, text = _HELP[key]
+        takers = [s.name for s in RECIPES.values() if key in s.options]
+        if key in ("data", "frame_rate"):
+            text = f"{' | '.join(takers)} only: {text}"
         kind = Path if key == "data" else _argument_type(setting)
         parser.add_argument(setting.flag, dest=key, metavar=metavar, type=kind, help=text)
     parser.add_argument("--out", metavar="DIR", type=Path, help="output folder (default: runs/NAME)")

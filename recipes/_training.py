@@ -39,6 +39,10 @@ class TrainingInterrupted(Exception):
         self.path = path
 
 
+class OtherRankDone(Exception):
+    """Training ended on a rank other than zero: rank zero alone evaluates and writes the outputs."""
+
+
 class _StopRequest:
     """SIGINT handler for the time of ``fit``: the first Ctrl-C asks to stop after the current step.
 
@@ -78,6 +82,8 @@ class SaveLast(Callback):
     def on_train_batch_end(self, trainer: pl.Trainer, pl_module: pl.LightningModule, *args: Any) -> None:
         step = trainer.global_step
         stopping = self.stop is not None and self.stop.requested
+        if trainer.world_size > 1:  # a Ctrl-C seen by any rank stops every rank at the same step
+            stopping = trainer.strategy.reduce_boolean_decision(stopping, all=False)
         if step % self.every == 0 or step >= trainer.max_steps or stopping:
             trainer.save_checkpoint(self.path, weights_only=False)
         if stopping:
@@ -107,7 +113,9 @@ class StepBatches:
     """Endless batches ``make(step)`` for ``step = start, start + 1, ...``.
 
     The batch depends on the step number only, so resuming at step ``start``
-    continues the exact stream of an uninterrupted run.
+    continues the exact stream of an uninterrupted run. Under
+    ``torch.distributed`` rank ``r`` of ``w`` takes rows ``r, r + w, ...`` of
+    each batch, so all ranks together see the batch one process would see.
     """
 
     def __init__(self, make: Callable[[int], Any], start: int = 0) -> None:
@@ -115,9 +123,13 @@ class StepBatches:
         self.start = start
 
     def __iter__(self) -> Iterator[Any]:
+        rank, world = 0, 1
+        if torch.distributed.is_available() and torch.distributed.is_initialized():
+            rank, world = torch.distributed.get_rank(), torch.distributed.get_world_size()
         step = self.start
         while True:
-            yield self.make(step)
+            batch = self.make(step)
+            yield batch[rank::world] if world > 1 else batch
             step += 1
 
 
@@ -166,7 +178,7 @@ class RecipeModule(pl.LightningModule):
 
     def validation_step(self, batch: Any, batch_idx: int) -> None:
         parts = self.losses(batch)
-        self.log_dict({f"val/{k}": v for k, v in parts.items()}, prog_bar=False)
+        self.log_dict({f"val/{k}": v for k, v in parts.items()}, prog_bar=False, sync_dist=True)
 
     def configure_optimizers(self) -> Any:
         params = [p for p in self.parameters() if p.requires_grad]
@@ -232,6 +244,7 @@ def train(
     writes the checkpoint and raises :class:`TrainingInterrupted`.
     """
     _quiet_lightning()
+    processes, nodes = int(module.config.get("devices", 1)), int(module.config.get("num_nodes", 1))
     for stale in (out / CHECKPOINT).parent.glob(f".{CHECKPOINT.name}.*.tmp"):
         stale.unlink()  # left by a run killed while it wrote a checkpoint
     start = int(resume["global_step"]) if resume is not None else 0
@@ -246,7 +259,9 @@ def train(
         val_kwargs = {"val_check_interval": interval, "check_val_every_n_epoch": None}
     trainer = pl.Trainer(
         accelerator="cpu",
-        devices=1,
+        devices=processes,
+        num_nodes=nodes,
+        strategy="ddp" if processes * nodes > 1 else "auto",
         max_steps=steps,
         logger=logger,
         callbacks=callbacks,
@@ -281,6 +296,8 @@ def train(
             raise
     if stop.requested and trainer.global_step < steps:
         raise TrainingInterrupted(trainer.global_step, out / CHECKPOINT)
+    if trainer.global_rank > 0:
+        raise OtherRankDone
     return trainer
 
 

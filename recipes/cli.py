@@ -25,6 +25,7 @@ PROG = "rvqlayer-recipe"
 EXIT_BAD_INPUT = 2
 EXIT_INTERRUPTED = 130  # 128 + SIGINT, what shells report for Ctrl-C
 _MAX_THREADS = 4096
+_MAX_PROCESSES = 1024
 _HELP = {
     "stages": ("N", "codebooks (stages), 1-64"),
     "entries": ("K", "codewords per stage, 2-16384"),
@@ -63,6 +64,17 @@ def _check_threads(flag: str, value: Any) -> int:
     return value
 
 
+def _check_processes(flag: str, value: Any) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or not 1 <= value <= _MAX_PROCESSES:
+        raise input_error(flag, f"an int in [1, {_MAX_PROCESSES}]", repr(value))
+    return value
+
+
+def _is_rank_zero() -> bool:
+    """False in the processes Lightning's DDP launcher starts for ranks other than zero."""
+    return os.environ.get("LOCAL_RANK", "0") == "0" and os.environ.get("NODE_RANK", "0") == "0"
+
+
 def build_parser() -> argparse.ArgumentParser:
     recipes = "\n".join(f"  {spec.name:<11} {spec.summary}" for spec in RECIPES.values())
     parser = _Parser(
@@ -86,6 +98,18 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--out", metavar="DIR", type=Path, help="output folder (default: runs/NAME)")
     parser.add_argument("--resume", action="store_true", help="continue from the last checkpoint in --out")
     parser.add_argument("--quick", action="store_true", help="a short run (under a minute); what the tests use")
+    parser.add_argument(
+        "--devices",
+        metavar="N",
+        type=_argument_type(Setting("devices", _check_processes, int)),
+        help="processes on this machine (Lightning DDP, gloo on CPU; default 1); --batch-size is split among all",
+    )
+    parser.add_argument(
+        "--num-nodes",
+        metavar="M",
+        type=_argument_type(Setting("num_nodes", _check_processes, int)),
+        help="machines, passed to Lightning (default 1; needs a cluster environment such as SLURM or torchrun)",
+    )
     parser.add_argument(
         "--threads",
         metavar="N",
@@ -112,6 +136,8 @@ class _Run:
 def main(argv: list[str] | None = None) -> int:
     """Run the command; returns the exit status (0 done, 2 bad input, 130 interrupted)."""
     started = time.perf_counter()
+    if not _is_rank_zero():  # rank zero alone speaks and writes
+        sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - for the life of this worker process
     try:
         args = build_parser().parse_args(argv)
     except _UsageError as exc:
@@ -135,7 +161,7 @@ def main(argv: list[str] | None = None) -> int:
 
     from ._checkpoint import CHECKPOINT
     from ._outputs import summary
-    from ._training import TrainingInterrupted
+    from ._training import OtherRankDone, TrainingInterrupted
 
     again = f"{PROG} {run.spec.name} --resume --out {shlex.quote(str(run.out))}"
     threads_before = torch.get_num_threads()
@@ -144,7 +170,11 @@ def main(argv: list[str] | None = None) -> int:
         if run.resume is None and (run.out / CHECKPOINT).exists():
             print(f"note: {run.out / CHECKPOINT} exists; starting afresh and replacing it (--resume continues it)")
         table, files = run.recipe.run(run.module, run.settings, run.prepared, run.out, run.resume)
+    except OtherRankDone:
+        return 0
     except TrainingInterrupted as stop:
+        if not _is_rank_zero():
+            return EXIT_INTERRUPTED
         print(f"{PROG}: interrupted at step {stop.step}; checkpoint written; continue with: {again}", file=sys.stderr)
         return EXIT_INTERRUPTED
     except KeyboardInterrupt:
@@ -189,6 +219,13 @@ def _validate(args: argparse.Namespace) -> _Run:
     if given["data"] is not None:
         given["data"] = str(given["data"])
     settings = combine(given, stored, spec, args.quick)
+    processes = (args.devices or 1) * (args.num_nodes or 1)
+    if settings["batch_size"] % processes:
+        raise input_error(
+            "--batch-size", f"a multiple of the {processes} processes (--devices x --num-nodes)", settings["batch_size"]
+        )
+    if processes > 1:  # how the run is spread, not what it computes: stored, never read back on --resume
+        settings["devices"], settings["num_nodes"] = args.devices or 1, args.num_nodes or 1
     prepared = recipe.prepare(settings)
     if settings["data"]:
         settings["data"] = str(Path(settings["data"]).resolve())

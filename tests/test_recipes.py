@@ -340,6 +340,8 @@ BAD_INPUT = {
     "unknown option": ["digits", "--learning-rate", "1"],
     "resume with no checkpoint": ["digits", "--resume"],
     "threads 0": ["digits", "--threads", "0"],
+    "devices 0": ["digits", "--devices", "0"],
+    "batch not split evenly among processes": ["digits", "--devices", "3"],
 }
 
 
@@ -764,3 +766,36 @@ def test_every_registered_recipe_provides_the_interface():
 def test_recipes_raise_their_own_error_not_the_library_helper():
     for path in Path(cli.__file__).parent.glob("*.py"):
         assert "rvqlayer._checks" not in path.read_text(), path.name
+
+
+def test_two_processes_train_and_rank_zero_alone_writes(tmp_path):
+    """Lightning DDP on CPU (gloo), two processes on one machine: one table, one set of files."""
+    out = tmp_path / "run"
+    env = dict(os.environ, PYTHONWARNINGS="ignore")
+    done = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "recipes.cli",
+            "digits",
+            "--quick",
+            "--steps",
+            "20",
+            "--devices",
+            "2",
+            "--out",
+            str(out),
+        ],
+        capture_output=True,
+        text=True,
+        env=env,
+        cwd=Path(__file__).resolve().parents[1],
+        timeout=600,
+    )
+    assert done.returncode == 0, done.stderr[-3000:]
+    assert done.stdout.count("rate-quality table (digits") == 1 and done.stdout.count("digits: 1497") == 1
+    state = torch.load(out / "checkpoints" / "last.ckpt", weights_only=True)
+    assert state["global_step"] == 20 and state["recipe"]["devices"] == 2
+    _, rows = _rows(out)
+    assert [r["stages"] for r in rows] == [1, 2, 3, 4] and all(math.isfinite(r["MSE"]) for r in rows)
+    assert not [p for p in out.rglob("*.tmp")]

@@ -99,10 +99,10 @@ def test_tones_table_has_a_row_per_stage_and_improves(tones_run):
     assert rc == 0
     rows = _assert_table(out, 8, {})
     # Spread of each asserted figure over seeds 0-4 x 1 and 2 threads (--quick; DEVELOPERS.md has the rule):
-    # SNR gain of stage 2 / 3 / 4: mean 2.06 / 1.26 / 0.89 dB, sd 0.11 / 0.14 / 0.15 (>= 6 sd). Stages 5-8
-    # add 0.21-0.54 dB with sd 0.11-0.17 (under 3 sd), so they are not asserted one by one. All stages
-    # against one: +5.57 dB, sd 0.73; SNR with one stage: 3.61 dB, sd 0.35. The LSD is not asserted: after
-    # 120 steps it rose with more stages in 4 of 5 seeds (LSD8 - LSD1: mean +0.67 dB, sd 0.45).
+    # SNR gain of stage 2 / 3 / 4: mean 2.10 / 1.32 / 0.90 dB, sd 0.16 / 0.23 / 0.16 (>= 5.7 sd). Stages 5-8
+    # add 0.21-0.55 dB with sd 0.09-0.16 (2.2-3.5 sd), so they are not asserted one by one. All stages
+    # against one: +5.73 dB, sd 0.83; SNR with one stage: 3.68 dB, sd 0.32. The LSD is not asserted: after
+    # 120 steps it rose with more stages in 4 of 5 seeds (LSD8 - LSD1: mean +0.59 dB, sd 0.51).
     snr = [r["SNR"] for r in rows]
     assert snr[0] < snr[1] < snr[2] < snr[3], snr
     assert snr[-1] > snr[0] > 0.0
@@ -180,8 +180,8 @@ def test_tones_table_matches_the_checkpoint(tones_run):
 def test_digits_table_and_grid(digits_run):
     out, rc, stdout = digits_run
     assert rc == 0
-    # Spread over seeds 0-4 x 1 and 2 threads (--quick): MSE drop per added stage 0.0061 / 0.0017 / 0.0006,
-    # sd 0.0002 / 0.0002 / 0.00002 (>= 7 sd); 0.06 - MSE(1 stage) 0.022, sd 0.0009; 0.045 - MSE(4) 0.015, sd 0.0009.
+    # Spread over seeds 0-4 x 1 and 2 threads (--quick): MSE drop per added stage 0.0063 / 0.0018 / 0.0006,
+    # sd 0.0005 / 0.0002 / 0.0001 (>= 7.5 sd); 0.06 - MSE(1 stage) 0.022, sd 0.0012; 0.045 - MSE(4) 0.015, sd 0.0008.
     rows = _assert_table(out, 4, {"MSE": False})
     assert [r["rate"] for r in rows] == [6.0, 12.0, 18.0, 24.0]  # 64 entries = 6 bits per stage, one vector per image
     # Pixels in [0, 1]: the mean image of the whole set gives an MSE of 0.0733 (computed from load_digits);
@@ -199,8 +199,8 @@ def test_embeddings_codes_decode_through_the_saved_codebooks(embeddings_run):
 
     out, rc, _ = embeddings_run
     assert rc == 0
-    # Spread over seeds 0-4 x 1 and 2 threads (--quick): SNR gain per added stage 1.84-2.30 dB, sd <= 0.056;
-    # error share drop per stage 0.26-2.10 points, each >= 9 sd.
+    # Spread over seeds 0-4 x 1 and 2 threads (--quick): SNR gain per added stage 1.83-2.30 dB, sd <= 0.057;
+    # error share drop per stage 0.26-2.05 points, each >= 8.7 sd.
     rows = _assert_table(out, 6, {"SNR": True, "error share": False})
     n, dim, comps = DEMO[True]
     x = demo_features(0, n, dim, comps)
@@ -250,8 +250,8 @@ def test_embeddings_from_a_sequence_file(tmp_path, suffix):
         ]
     )
     assert rc == 0, err
-    # Spread (this file, seeds 0-4 x 1 and 2 threads): SNR gain per stage 2.38 / 2.15 dB, sd 0.10 / 0.04;
-    # error share drop 23.8 / 12.7 points, sd 0.8 / 0.4.
+    # Spread (this file, seeds 0-4 x 1 and 2 threads): SNR gain per stage 2.38 / 2.15 dB, sd 0.10 / 0.035;
+    # error share drop 23.8 / 12.8 points, sd 0.74 / 0.41.
     rows = _assert_table(out, 3, {"SNR": True, "error share": False})
     assert [r["rate"] for r in rows] == pytest.approx([0.2, 0.4, 0.6])  # 50 vectors/s * 4 bits per stage
     codes = np.load(out / "codes.npy")
@@ -263,9 +263,9 @@ def test_embeddings_with_learned_projections(tmp_path):
     rc, _, err = _run(["embeddings", "--quick", "--code-dim", "8", "--steps", "30", "--out", str(out)])
     assert rc == 0, err
     rows = _assert_table(out, 6, {})
-    # Spread over seeds 0-4 x 1 and 2 threads: stages 4-6 add 0.005-0.02 dB each, sd 0.0014-0.0063 (3.3-3.8 sd,
+    # Spread over seeds 0-4 x 1 and 2 threads: stages 4-6 add 0.006-0.022 dB each, sd 0.0015-0.0067 (3.2-3.9 sd;
     # 60 steps no better), too close to the rule's 3 sd to assert stage by stage. All stages against one:
-    # SNR +0.22 dB, sd 0.047 (4.8 sd); error share -5.1 points, sd 0.97 (5.3 sd).
+    # SNR +0.23 dB, sd 0.046 (5.1 sd); error share -5.2 points, sd 0.90 (5.8 sd).
     assert rows[-1]["SNR"] > rows[0]["SNR"] and rows[-1]["error share"] < rows[0]["error share"]
     assert all(math.isfinite(r["SNR"]) and math.isfinite(r["error share"]) for r in rows)
 

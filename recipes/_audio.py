@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from ._outputs import atomic_path
+from rvqlayer.files import atomic_path
 
 # Multi-resolution STFT loss: Yamamoto, Song, Kim, "Parallel WaveGAN: a fast waveform
 # generation model based on generative adversarial networks with multi-resolution
@@ -89,15 +89,32 @@ def log_spectral_distance_db(
 PEAK_DBFS = -1.0
 
 
-def write_wav(path: Path, audio: np.ndarray, rate: int, peak_dbfs: float = PEAK_DBFS) -> Path:
-    """Write mono ``audio`` ``[samples]`` as 16-bit PCM, peak-normalised to ``peak_dbfs``.
+def peak_gain(*clips: np.ndarray, peak_dbfs: float = PEAK_DBFS) -> float:
+    """The one factor that puts the loudest sample of all ``clips`` at ``peak_dbfs`` (0 for silence).
 
-    Every file gets the same peak level, so switching between them does not
-    jump in loudness; silence stays silence.
+    Written with the same factor, a decoded clip keeps its level relative to
+    the original, so a codec's gain error stays audible, and no file peaks
+    above ``peak_dbfs``.
+
+    >>> round(peak_gain(np.array([0.5, -0.25]), np.array([0.1])), 4)  # -1 dBFS is 0.8913
+    1.7825
+    """
+    peak = max((float(np.abs(c).max()) for c in clips if np.size(c)), default=0.0)
+    return 10 ** (peak_dbfs / 20) / peak if peak > 0 else 0.0
+
+
+def write_wav(
+    path: Path, audio: np.ndarray, rate: int, peak_dbfs: float = PEAK_DBFS, gain: float | None = None
+) -> Path:
+    """Write mono ``audio`` ``[samples]`` as 16-bit PCM, scaled by ``gain``.
+
+    ``gain=None`` peak-normalises this clip alone to ``peak_dbfs``; pass
+    :func:`peak_gain` of a clip and its decodings to scale them all alike.
+    Silence stays silence.
     """
     audio = np.asarray(audio, dtype=np.float64)
-    peak = float(np.abs(audio).max()) if audio.size else 0.0
-    gain = 10 ** (peak_dbfs / 20) / peak if peak > 0 else 0.0
+    if gain is None:
+        gain = peak_gain(audio, peak_dbfs=peak_dbfs)
     pcm = np.clip(np.round(audio * gain * 32767), -32767, 32767).astype("<i2")
     with atomic_path(path) as tmp:
         with wave.open(str(tmp), "wb") as w:
@@ -106,3 +123,17 @@ def write_wav(path: Path, audio: np.ndarray, rate: int, peak_dbfs: float = PEAK_
             w.setframerate(rate)
             w.writeframes(pcm.tobytes())
     return path
+
+
+def write_clip_set(folder: Path, original: np.ndarray, decoded: dict[int, np.ndarray], rate: int) -> dict[str, Path]:
+    """``original.wav`` and ``decoded_<k>_stages.wav`` for each ``k``, all scaled by one :func:`peak_gain`.
+
+    Returns ``{what: path}`` for the recipes' file list.
+    """
+    gain = peak_gain(original, *decoded.values())  # one factor: a codec's level error stays audible
+    files = {"original clip": write_wav(folder / "original.wav", original, rate, gain=gain)}
+    for k, clip in decoded.items():
+        files[f"decoded, {k} stage{'s' * (k > 1)}"] = write_wav(
+            folder / f"decoded_{k}_stages.wav", clip, rate, gain=gain
+        )
+    return files

@@ -1,78 +1,23 @@
-"""Output files of the recipes: the output folder, atomic writes, the rate-quality
-table, the health report and the closing summary."""
+"""Output files of a run: text and JSON written atomically, the table and health files, the closing summary."""
 
 from __future__ import annotations
 
 import json
 import math
 import os
-import tempfile
-from collections.abc import Sequence
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from rvqlayer import MultiStageQuantizer
-from rvqlayer._checks import fail
-from rvqlayer.files import atomic_path
+from rvqlayer.files import atomic_write
 
-
-# ------------------------------------------------------------ output folder
-def check_output_dir(path: Path) -> None:
-    """Fail unless ``path`` is, or can become, a folder this process can write to.
-
-    Creates nothing: the nearest existing ancestor must be a folder with write
-    permission (a plain file, or a folder such as ``/proc`` that refuses new
-    entries even for root, is rejected when :func:`make_output_dir` tries).
-    """
-    path = Path(path)
-    if path.exists() and not path.is_dir():
-        raise fail("--out", "a folder", f"{str(path)!r}, which is a file")
-    probe = path
-    while not probe.exists():
-        if probe.parent == probe:
-            break
-        probe = probe.parent
-    if not probe.is_dir():
-        raise fail("--out", "a writable folder", f"{str(path)!r}: {str(probe)!r} is not a folder")
-    if not os.access(probe, os.W_OK | os.X_OK):
-        raise fail("--out", "a writable folder", f"{str(path)!r}: no write permission in {str(probe)!r}")
-
-
-def make_output_dir(path: Path) -> Path:
-    """Create ``path`` (and missing parents) and prove it writable with a probe file.
-
-    On failure every folder this call created is removed again, so a rejected
-    output folder leaves nothing behind.
-    """
-    path = Path(path)
-    check_output_dir(path)
-    missing: list[Path] = []
-    probe = path
-    while not probe.exists():
-        missing.append(probe)
-        probe = probe.parent
-    created: list[Path] = []
-    try:
-        for folder in reversed(missing):
-            folder.mkdir()
-            created.append(folder)
-        fd, name = tempfile.mkstemp(prefix=".write-probe-", dir=path)
-        os.close(fd)
-        os.unlink(name)
-    except OSError as exc:
-        for folder in reversed(created):
-            try:
-                folder.rmdir()
-            except OSError:
-                pass
-        raise fail("--out", "a writable folder", f"{str(path)!r} ({exc.strerror or type(exc).__name__})") from None
-    return path
+from ._table import RateTable
 
 
 def write_text(target: Path, text: str) -> Path:
-    with atomic_path(target) as tmp:
-        tmp.write_text(text, encoding="utf-8")
+    """``text`` (UTF-8) to ``target`` through the project's atomic writer; returns ``target``."""
+    with atomic_write(target, "w") as f:
+        f.write(text)
     return target
 
 
@@ -88,107 +33,8 @@ def _finite(value: Any) -> Any:
 
 
 def write_json(target: Path, obj: Any) -> Path:
+    """``obj`` as indented JSON (NaN and Inf as null) to ``target``."""
     return write_text(target, json.dumps(_finite(obj), indent=2) + "\n")
-
-
-# ------------------------------------------------------- rate-quality table
-@dataclass(frozen=True)
-class Measure:
-    """A quality figure: its column name, unit and which direction is better."""
-
-    name: str
-    unit: str
-    higher_is_better: bool
-
-    @property
-    def label(self) -> str:
-        return f"{self.name} {self.unit}".strip()
-
-
-@dataclass
-class RateRow:
-    """One row of the rate-quality table: ``stages`` used at evaluation."""
-
-    stages: int
-    bits_per_vector: float
-    rate: float
-    quality: dict[str, float] = field(default_factory=dict)
-
-
-@dataclass
-class RateTable:
-    """Rate-quality figures, one row per stage count 1..stages.
-
-    ``rate_unit`` names the rate column (for example ``"kbps"`` or
-    ``"bits/image"``); ``measures`` the quality columns in order.
-    """
-
-    rate_unit: str
-    measures: list[Measure]
-    rows: list[RateRow]
-
-    def format(self) -> str:
-        """Fixed-width text: a header and one line per row.
-
-        >>> m = [Measure("SNR", "dB", True)]
-        >>> print(RateTable("kbps", m, [RateRow(1, 8.0, 1.0, {"SNR": 3.25})]).format())
-        stages  bits/vector      kbps    SNR dB
-             1          8.0     1.000      3.25
-        """
-        cols = [f"{'stages':>6}", f"{'bits/vector':>12}", f"{self.rate_unit:>9}"]
-        cols += [f"{m.label:>{max(9, len(m.label))}}" for m in self.measures]
-        decimals = {m.name: _decimals([r.quality[m.name] for r in self.rows]) for m in self.measures}
-        lines = ["  ".join(cols)]
-        for r in self.rows:
-            cells = [f"{r.stages:>6}", f"{r.bits_per_vector:>12.1f}", f"{r.rate:>9.3f}"]
-            cells += [f"{r.quality[m.name]:>{max(9, len(m.label))}.{decimals[m.name]}f}" for m in self.measures]
-            lines.append("  ".join(cells))
-        return "\n".join(lines)
-
-    def worse_with_more_stages(self) -> list[str]:
-        """Descriptions of every place where a quality figure gets worse as a stage is added."""
-        problems = []
-        for m in self.measures:
-            for a, b in zip(self.rows, self.rows[1:]):
-                va, vb = a.quality[m.name], b.quality[m.name]
-                if (vb < va) if m.higher_is_better else (vb > va):
-                    problems.append(f"{m.label} goes from {va:.4g} at {a.stages} stages to {vb:.4g} at {b.stages}")
-        return problems
-
-    def as_dict(self) -> dict[str, Any]:
-        return {
-            "rate_unit": self.rate_unit,
-            "measures": [
-                {"name": m.name, "unit": m.unit, "higher_is_better": m.higher_is_better} for m in self.measures
-            ],
-            "rows": [
-                {"stages": r.stages, "bits_per_vector": r.bits_per_vector, "rate": r.rate, **r.quality}
-                for r in self.rows
-            ],
-        }
-
-
-def _decimals(values: list[float]) -> int:
-    """2 decimals for a column of figures of 1 and more (dB, %), 5 for small ones (MSE)."""
-    return 2 if max((abs(v) for v in values), default=0.0) >= 1.0 else 5
-
-
-def rate_table(
-    quantizer: MultiStageQuantizer,
-    measure: Any,
-    measures: Sequence[Measure],
-    rate_unit: str,
-    rate_of_bits: Any,
-) -> RateTable:
-    """Evaluate ``measure(stages) -> {name: value}`` for every stage count 1..stages.
-
-    ``rate_of_bits(bits_per_vector)`` converts bits per vector to the rate column.
-    """
-    rows = []
-    for k in range(1, quantizer.stages + 1):
-        bits = quantizer.bits_per_vector(stages=k)
-        rows.append(RateRow(k, bits, float(rate_of_bits(bits)), {n: float(v) for n, v in measure(k).items()}))
-    return RateTable(rate_unit, list(measures), rows)
 
 
 def write_table(out: Path, table: RateTable, extra: dict[str, Any] | None = None) -> dict[str, Path]:
@@ -202,7 +48,6 @@ def write_table(out: Path, table: RateTable, extra: dict[str, Any] | None = None
     }
 
 
-# ------------------------------------------------------------------ health
 def write_health(out: Path, quantizer: MultiStageQuantizer) -> dict[str, Path]:
     """The quantizer's health report as ``health.txt`` (table) and ``health.json`` (flat figures)."""
     report = quantizer.health()
@@ -212,7 +57,6 @@ def write_health(out: Path, quantizer: MultiStageQuantizer) -> dict[str, Path]:
     }
 
 
-# ----------------------------------------------------------------- summary
 def summary(out: Path, files: dict[str, Path]) -> str:
     """Lines naming each output file, relative to the current folder when shorter."""
     width = max(len(k) for k in files)

@@ -6,7 +6,9 @@ from pathlib import Path
 
 import numpy as np
 
-from ._outputs import RateTable, atomic_path
+from rvqlayer.files import atomic_path
+
+from ._table import RateTable
 
 
 def _pyplot():
@@ -39,12 +41,12 @@ def rate_quality_png(path: Path, table: RateTable, title: str) -> Path:
     return path
 
 
-def image_grid_png(path: Path, columns: list[tuple[str, np.ndarray]], shape: tuple[int, int], title: str) -> Path:
-    """A grid: one row per ``(label, images [n, h * w])`` entry, one column per image."""
+def image_grid_png(path: Path, rows: list[tuple[str, np.ndarray]], shape: tuple[int, int], title: str) -> Path:
+    """A grid: one row per ``(label, images [n, h * w])`` entry, one column per image (each ``shape``)."""
     plt = _pyplot()
-    n = columns[0][1].shape[0]
-    fig, axes = plt.subplots(len(columns), n, figsize=(0.9 * n + 1.2, 1.0 * len(columns) + 0.4), squeeze=False)
-    for row, (label, images) in enumerate(columns):
+    n = rows[0][1].shape[0]
+    fig, axes = plt.subplots(len(rows), n, figsize=(0.9 * n + 1.2, 1.0 * len(rows) + 0.4), squeeze=False)
+    for row, (label, images) in enumerate(rows):
         for col in range(n):
             ax = axes[row][col]
             ax.imshow(images[col].reshape(shape), cmap="gray_r", vmin=0.0, vmax=1.0, interpolation="nearest")

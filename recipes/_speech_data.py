@@ -13,9 +13,8 @@ from pathlib import Path
 
 import numpy as np
 
-from rvqlayer._checks import fail
-
 from . import _speech_synth
+from ._errors import input_error
 
 RATE = _speech_synth.RATE
 SUFFIXES = (".wav", ".flac")
@@ -70,21 +69,21 @@ def from_folder(folder: Path, excerpt: int, eval_seconds: float, max_clips: int)
 
     folder = Path(folder)
     if not folder.is_dir():
-        raise fail("--data", "a folder of WAV or FLAC files", repr(str(folder)))
+        raise input_error("--data", "a folder of WAV or FLAC files", repr(str(folder)))
     files = sorted(p for p in folder.iterdir() if p.suffix.lower() in SUFFIXES and not p.name.startswith("."))
     if not files:
-        raise fail("--data", "a folder holding .wav or .flac files", f"none in {str(folder)!r}")
+        raise input_error("--data", "a folder holding .wav or .flac files", f"none in {str(folder)!r}")
     clips = []
     for path in files:
         try:
             data, rate = soundfile.read(str(path), dtype="float64", always_2d=True)
         except Exception as exc:  # libsndfile's errors, permission errors, a folder named like a file
-            raise fail("--data", "readable WAV or FLAC files", f"{str(path)!r} ({type(exc).__name__})") from None
+            raise input_error("--data", "readable WAV or FLAC files", f"{str(path)!r} ({type(exc).__name__})") from None
         if not np.isfinite(data).all():
-            raise fail("--data", "finite samples (no NaN or Inf)", f"non-finite samples in {str(path)!r}")
+            raise input_error("--data", "finite samples (no NaN or Inf)", f"non-finite samples in {str(path)!r}")
         mono = _resample(data.mean(axis=1), int(rate))
         if len(mono) < excerpt:
-            raise fail(
+            raise input_error(
                 "--data",
                 f"clips of at least {excerpt / RATE:g} s (one training excerpt)",
                 f"{len(mono) / RATE:.3f} s in {str(path)!r}",
@@ -94,7 +93,7 @@ def from_folder(folder: Path, excerpt: int, eval_seconds: float, max_clips: int)
         cut = int(len(clips[0]) * 0.8)
         train, held = [clips[0][:cut]], [clips[0][cut:]]
         if min(len(train[0]), len(held[0])) < excerpt:
-            raise fail(
+            raise input_error(
                 "--data",
                 f"two or more files, or one of at least {5 * excerpt / RATE:g} s (its last fifth is held out)",
                 f"one file of {len(clips[0]) / RATE:.3f} s",

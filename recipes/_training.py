@@ -1,5 +1,5 @@
 """Lightning pieces shared by the recipes: the module wrapper, step-keyed batches,
-atomic checkpoints and resuming.
+periodic checkpoints, Ctrl-C handling and the training call.
 
 Every recipe draws the batch of training step ``s`` from ``(seed, s)`` alone,
 and the checkpoint keeps torch's random state, so a run resumed from its last
@@ -9,7 +9,11 @@ was never interrupted.
 
 from __future__ import annotations
 
+import contextlib
 import logging
+import signal
+import sys
+import threading
 import warnings
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -19,57 +23,89 @@ import pytorch_lightning as pl
 import torch
 from pytorch_lightning.callbacks import Callback, TQDMProgressBar
 from pytorch_lightning.loggers import TensorBoardLogger
-from pytorch_lightning.plugins.io import TorchCheckpointIO
 from torch import nn
+from typing_extensions import override
 
-from rvqlayer import MultiStageQuantizer
-from rvqlayer._checks import fail
-from rvqlayer.files import atomic_write
-
-CHECKPOINT = Path("checkpoints") / "last.ckpt"
+from ._checkpoint import CHECKPOINT, AtomicCheckpointIO
 
 
-# ------------------------------------------------------------- checkpoints
-class AtomicCheckpointIO(TorchCheckpointIO):
-    """Checkpoint files written under a temporary name in the same folder, then renamed.
+# ------------------------------------------------------------- interrupts
+class TrainingInterrupted(Exception):
+    """Ctrl-C stopped training; a checkpoint of the last finished ``step`` was written to ``path``."""
 
-    Lightning's own writer stages the bytes in the system temp folder and
-    moves them, which is a copy (not atomic) when that folder lies on another
-    file system. Loading always uses ``torch.load(weights_only=True)``.
+    def __init__(self, step: int, path: Path) -> None:
+        super().__init__(f"interrupted at step {step}")
+        self.step = step
+        self.path = path
+
+
+class OtherRankDone(Exception):
+    """Training ended on a rank other than zero: rank zero alone evaluates and writes the outputs."""
+
+
+class _StopRequest:
+    """SIGINT handler for the time of ``fit``: the first Ctrl-C asks to stop after the current step.
+
+    The step in progress finishes, so the checkpoint written then resumes bit
+    for bit; a second Ctrl-C interrupts at once (``KeyboardInterrupt``).
+    Outside the main thread (where handlers cannot be set) it does nothing.
     """
 
-    def save_checkpoint(self, checkpoint: dict[str, Any], path: Any, storage_options: Any = None) -> None:
-        with atomic_write(path) as f:
-            torch.save(checkpoint, f)
+    def __init__(self) -> None:
+        self.requested = False
+        self._previous: Any = None
 
-    def load_checkpoint(self, path: Any, map_location: Any = None, weights_only: bool | None = None) -> dict[str, Any]:
-        return read_checkpoint(Path(path))
+    def _handle(self, signum: int, frame: Any) -> None:
+        if self.requested:
+            raise KeyboardInterrupt
+        self.requested = True
 
+    def __enter__(self) -> _StopRequest:
+        if threading.current_thread() is threading.main_thread():
+            self._previous = signal.signal(signal.SIGINT, self._handle)
+        return self
 
-def read_checkpoint(path: Path) -> dict[str, Any]:
-    """Load a recipe checkpoint with ``weights_only=True``; a wrong file gives a clear error."""
-    if not path.is_file():
-        raise fail("--resume", "a run folder with a checkpoint", f"no checkpoint at {str(path)!r}")
-    try:
-        state = torch.load(path, map_location="cpu", weights_only=True)
-    except Exception as exc:  # truncated zip, wrong format, disallowed object
-        raise fail("--resume", "a readable checkpoint", f"{str(path)!r} ({type(exc).__name__})") from None
-    if not isinstance(state, dict) or not {"state_dict", "global_step", "recipe"} <= set(state):
-        raise fail("--resume", "a checkpoint written by a recipe", f"{str(path)!r} without its recipe fields")
-    return state
+    def __exit__(self, *exc: Any) -> None:
+        if self._previous is not None:
+            signal.signal(signal.SIGINT, self._previous)
 
 
 class SaveLast(Callback):
-    """Write ``checkpoints/last.ckpt`` every ``every`` steps and after the last step."""
+    """Write ``checkpoints/last.ckpt`` every ``every`` steps, after the last step, and when asked to stop."""
 
-    def __init__(self, path: Path, every: int) -> None:
+    def __init__(self, path: Path, every: int, stop: _StopRequest | None = None) -> None:
         self.path = Path(path)
         self.every = max(1, every)
+        self.stop = stop
 
+    @override
     def on_train_batch_end(self, trainer: pl.Trainer, pl_module: pl.LightningModule, *args: Any) -> None:
         step = trainer.global_step
-        if step % self.every == 0 or step >= trainer.max_steps:
+        stopping = self.stop is not None and self.stop.requested
+        if trainer.world_size > 1:  # a Ctrl-C seen by any rank stops every rank at the same step
+            stopping = trainer.strategy.reduce_boolean_decision(stopping, all=False)
+        if step % self.every == 0 or step >= trainer.max_steps or stopping:
             trainer.save_checkpoint(self.path, weights_only=False)
+        if stopping:
+            trainer.should_stop = True
+
+
+class _StderrProgressBar(TQDMProgressBar):
+    """Lightning's progress bar on stderr, so that stdout holds the recipe's own lines only.
+
+    Lightning's bars are built with ``file=sys.stdout``; each is built here
+    while ``sys.stdout`` points at stderr.
+    """
+
+    @override
+    def init_train_tqdm(self) -> Any:
+        with contextlib.redirect_stdout(sys.stderr):
+            return super().init_train_tqdm()
+
+    @override
+    def init_validation_tqdm(self) -> Any:
+        with contextlib.redirect_stdout(sys.stderr):
+            return super().init_validation_tqdm()
 
 
 # ----------------------------------------------------------------- batches
@@ -77,7 +113,9 @@ class StepBatches:
     """Endless batches ``make(step)`` for ``step = start, start + 1, ...``.
 
     The batch depends on the step number only, so resuming at step ``start``
-    continues the exact stream of an uninterrupted run.
+    continues the exact stream of an uninterrupted run. Under
+    ``torch.distributed`` rank ``r`` of ``w`` takes rows ``r, r + w, ...`` of
+    each batch, so all ranks together see the batch one process would see.
     """
 
     def __init__(self, make: Callable[[int], Any], start: int = 0) -> None:
@@ -85,9 +123,13 @@ class StepBatches:
         self.start = start
 
     def __iter__(self) -> Iterator[Any]:
+        rank, world = 0, 1
+        if torch.distributed.is_available() and torch.distributed.is_initialized():
+            rank, world = torch.distributed.get_rank(), torch.distributed.get_world_size()
         step = self.start
         while True:
-            yield self.make(step)
+            batch = self.make(step)
+            yield batch[rank::world] if world > 1 else batch
             step += 1
 
 
@@ -113,12 +155,11 @@ class FixedBatches:
 class RecipeModule(pl.LightningModule):
     """Lightning wrapper shared by the recipes.
 
-    Subclasses set ``self.quantizer`` and implement :meth:`losses`, which
-    returns a dict of scalar tensors including ``"loss"`` (what is minimised).
+    Subclasses hold their model (with its quantizer, registered once) and
+    implement :meth:`losses`, which returns a dict of scalar tensors
+    including ``"loss"`` (what is minimised).
     ``config`` (plain values) is stored in every checkpoint under ``"recipe"``.
     """
-
-    quantizer: MultiStageQuantizer
 
     def __init__(self, config: dict[str, Any], lr: float = 1e-3) -> None:
         super().__init__()
@@ -137,7 +178,7 @@ class RecipeModule(pl.LightningModule):
 
     def validation_step(self, batch: Any, batch_idx: int) -> None:
         parts = self.losses(batch)
-        self.log_dict({f"val/{k}": v for k, v in parts.items()}, prog_bar=False)
+        self.log_dict({f"val/{k}": v for k, v in parts.items()}, prog_bar=False, sync_dist=True)
 
     def configure_optimizers(self) -> Any:
         params = [p for p in self.parameters() if p.requires_grad]
@@ -158,7 +199,7 @@ def val_interval(config: dict[str, Any]) -> int:
     return max(1, int(config["steps"]) // (2 if config["quick"] else 5))
 
 
-def monitor_callbacks() -> list[Callback]:
+def monitor_callbacks() -> list[Callback]:  # the same instances' states are checked on --resume
     """The codebook health monitor, when :mod:`rvqlayer.callbacks` is available."""
     try:
         from rvqlayer.callbacks import CodebookMonitor
@@ -197,15 +238,19 @@ def train(
 ) -> pl.Trainer:
     """Fit ``module`` for ``steps`` optimizer steps (in total, counting a resumed run's).
 
-    ``resume`` is the checkpoint read by :func:`read_checkpoint` (or None).
-    Logs go to ``out/logs`` (TensorBoard), the checkpoint to ``out/checkpoints/last.ckpt``.
+    ``resume`` is the checkpoint read by :func:`~recipes._checkpoint.read_checkpoint`
+    (or None). Logs go to ``out/logs`` (TensorBoard), the checkpoint to
+    ``out/checkpoints/last.ckpt``. Ctrl-C stops after the step in progress,
+    writes the checkpoint and raises :class:`TrainingInterrupted`.
     """
     _quiet_lightning()
+    processes, nodes = int(module.config.get("devices", 1)), int(module.config.get("num_nodes", 1))
     for stale in (out / CHECKPOINT).parent.glob(f".{CHECKPOINT.name}.*.tmp"):
         stale.unlink()  # left by a run killed while it wrote a checkpoint
     start = int(resume["global_step"]) if resume is not None else 0
     logger = TensorBoardLogger(str(out), name="logs", version="", default_hp_metric=False)
-    callbacks: list[Callback] = [SaveLast(out / CHECKPOINT, save_every), TQDMProgressBar(refresh_rate=10)]
+    stop = _StopRequest()
+    callbacks: list[Callback] = [SaveLast(out / CHECKPOINT, save_every, stop), _StderrProgressBar(refresh_rate=10)]
     callbacks += monitor_callbacks()
     log_every = max(1, min(50, steps // 20))
     val_kwargs: dict[str, Any] = {"limit_val_batches": 0}
@@ -214,7 +259,9 @@ def train(
         val_kwargs = {"val_check_interval": interval, "check_val_every_n_epoch": None}
     trainer = pl.Trainer(
         accelerator="cpu",
-        devices=1,
+        devices=processes,
+        num_nodes=nodes,
+        strategy="ddp" if processes * nodes > 1 else "auto",
         max_steps=steps,
         logger=logger,
         callbacks=callbacks,
@@ -234,13 +281,23 @@ def train(
         return trainer
     if resume is not None:
         print(f"resuming from the checkpoint at step {start} (of {steps})", flush=True)
-    trainer.fit(
-        module,
-        train_dataloaders=StepBatches(make_batch, start),
-        val_dataloaders=FixedBatches(val_batches) if val_batches else None,
-        ckpt_path=ckpt,
-        weights_only=True,
-    )
+    with stop:
+        try:
+            trainer.fit(
+                module,
+                train_dataloaders=StepBatches(make_batch, start),
+                val_dataloaders=FixedBatches(val_batches) if val_batches else None,
+                ckpt_path=ckpt,
+                weights_only=True,
+            )
+        except SystemExit:
+            if stop.requested:  # a second Ctrl-C: Lightning turns the KeyboardInterrupt into SystemExit(1)
+                raise KeyboardInterrupt from None
+            raise
+    if stop.requested and trainer.global_step < steps:
+        raise TrainingInterrupted(trainer.global_step, out / CHECKPOINT)
+    if trainer.global_rank > 0:
+        raise OtherRankDone
     return trainer
 
 

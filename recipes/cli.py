@@ -1,34 +1,44 @@
 """``rvqlayer-recipe NAME``: train a bundled recipe on CPU and print its rate-quality table.
 
 Everything the command is given is checked before anything is written: a bad
-option, data file or output folder gives one line on stderr and exit status 2.
+option, data file, output folder or checkpoint gives one line on stderr and
+exit status 2. Ctrl-C during training writes a checkpoint, prints the command
+that continues the run, and exits with status 130.
 """
 
 from __future__ import annotations
 
 import argparse
-import importlib
-import math
+import os
+import shlex
 import sys
 import time
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, NoReturn
 
-from rvqlayer._checks import RvqlayerError, fail
-
-from ._defaults import describe
+from ._errors import RecipeInputError, input_error
+from ._settings import SETTINGS, Setting, check_stored, combine
+from .registry import RECIPES, Prepared, Recipe, RecipeSpec
 
 PROG = "rvqlayer-recipe"
-RECIPES = ("tones", "digits", "embeddings", "speech")
-_SUMMARIES = {
-    "tones": "a small audio codec on synthetic 16 kHz tones, noise bursts and pauses",
-    "digits": "scikit-learn's bundled 8x8 handwritten digits through a small autoencoder",
-    "embeddings": "a quantizer fitted directly to pre-computed feature vectors (.npy or .pt)",
-    "speech": "the main job: a small speech codec at 16 kHz judged by PESQ and STOI (synthetic or --data DIR)",
+EXIT_BAD_INPUT = 2
+EXIT_INTERRUPTED = 130  # 128 + SIGINT, what shells report for Ctrl-C
+_MAX_THREADS = 4096
+_MAX_PROCESSES = 1024
+_HELP = {
+    "stages": ("N", "codebooks (stages), 1-64"),
+    "entries": ("K", "codewords per stage, 2-16384"),
+    "code_dim": ("D", "lookup size, 1 to the quantizer's input size (default: see below)"),
+    "steps": ("N", "training steps in total"),
+    "batch_size": ("B", "examples per step"),
+    "seed": ("S", "seed of data and model (default 0)"),
+    "data": (
+        "PATH",
+        "embeddings: feature file .npy or .pt, [N, dim] or [N, T, dim]; speech: a folder of WAV/FLAC files",
+    ),
+    "frame_rate": ("HZ", "vectors per second, to report kbps"),
 }
-_TAKES_DATA = ("embeddings", "speech")
-# Settings that fix the model's shape or its data stream: a resumed run must keep them.
-_FIXED_ON_RESUME = ("stages", "entries", "code_dim", "seed", "data")
 
 
 class _UsageError(Exception):
@@ -40,185 +50,208 @@ class _Parser(argparse.ArgumentParser):
         raise _UsageError(message)
 
 
-def _int_in(name: str, low: int, high: int):
-    def parse(text: str) -> int:
+def _argument_type(setting: Setting):
+    def parse(text: str) -> Any:
         try:
-            value = int(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(str(fail(name, "an int", repr(text)))) from None
-        if not low <= value <= high:
-            raise argparse.ArgumentTypeError(str(fail(name, f"an int in [{low}, {high}]", value)))
-        return value
+            return setting.parse(text)
+        except RecipeInputError as err:
+            raise argparse.ArgumentTypeError(str(err)) from None
 
+    parse.__name__ = setting.key
     return parse
 
 
-def _positive_float(name: str):
-    def parse(text: str) -> float:
-        try:
-            value = float(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(str(fail(name, "a number", repr(text)))) from None
-        if not (math.isfinite(value) and value > 0):
-            raise argparse.ArgumentTypeError(str(fail(name, "a finite number > 0", value)))
-        return value
+def _check_threads(flag: str, value: Any) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or not 1 <= value <= _MAX_THREADS:
+        raise input_error(flag, f"an int in [1, {_MAX_THREADS}]", repr(value))
+    return value
 
-    return parse
+
+def _check_processes(flag: str, value: Any) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or not 1 <= value <= _MAX_PROCESSES:
+        raise input_error(flag, f"an int in [1, {_MAX_PROCESSES}]", repr(value))
+    return value
+
+
+def _is_rank_zero() -> bool:
+    """False in the processes Lightning's DDP launcher starts for ranks other than zero."""
+    return os.environ.get("LOCAL_RANK", "0") == "0" and os.environ.get("NODE_RANK", "0") == "0"
 
 
 def build_parser() -> argparse.ArgumentParser:
-    recipes = "\n".join(f"  {n:<11} {s}" for n, s in _SUMMARIES.items())
+    recipes = "\n".join(f"  {spec.name:<11} {spec.summary}" for spec in RECIPES.values())
     parser = _Parser(
         prog=PROG,
         formatter_class=argparse.RawDescriptionHelpFormatter,
         description="Train a bundled rvqlayer recipe on CPU and print its rate-quality table "
         "(one row per number of stages used).\n\nrecipes:\n" + recipes,
-        epilog="defaults:\n" + "\n".join("  " + describe(n) for n in RECIPES) + "\n\n"
+        epilog="defaults:\n" + "\n".join("  " + spec.describe() for spec in RECIPES.values()) + "\n\n"
         "Options left out take the recipe's defaults (or, with --resume, the checkpoint's).\n"
-        "Bad input exits with status 2 before anything is written.",
+        "Bad input exits with status 2 before anything is written; Ctrl-C during training\n"
+        "saves a checkpoint and exits with status 130.",
     )
-    parser.add_argument("name", choices=RECIPES, metavar="NAME", help=" | ".join(RECIPES))
-    parser.add_argument("--stages", metavar="N", type=_int_in("--stages", 1, 64), help="codebooks (stages), 1-64")
-    parser.add_argument(
-        "--entries", metavar="K", type=_int_in("--entries", 2, 16384), help="codewords per stage, 2-16384"
-    )
-    parser.add_argument(
-        "--code-dim",
-        metavar="D",
-        type=_int_in("--code-dim", 1, 1 << 20),
-        help="lookup size, 1 to the quantizer's input size (default: no projection)",
-    )
-    parser.add_argument("--steps", metavar="N", type=_int_in("--steps", 1, 10_000_000), help="training steps in total")
-    parser.add_argument("--batch-size", metavar="B", type=_int_in("--batch-size", 1, 65536), help="examples per step")
-    parser.add_argument(
-        "--seed", metavar="S", type=_int_in("--seed", 0, 2**32 - 1), help="seed of data and model (default 0)"
-    )
+    parser.add_argument("name", choices=list(RECIPES), metavar="NAME", help=" | ".join(RECIPES))
+    for key, setting in SETTINGS.items():
+        metavar, text = _HELP[key]
+        takers = [s.name for s in RECIPES.values() if key in s.options]
+        if key in ("data", "frame_rate"):
+            text = f"{' | '.join(takers)} only: {text}"
+        kind = Path if key == "data" else _argument_type(setting)
+        parser.add_argument(setting.flag, dest=key, metavar=metavar, type=kind, help=text)
     parser.add_argument("--out", metavar="DIR", type=Path, help="output folder (default: runs/NAME)")
     parser.add_argument("--resume", action="store_true", help="continue from the last checkpoint in --out")
     parser.add_argument("--quick", action="store_true", help="a short run (under a minute); what the tests use")
     parser.add_argument(
-        "--data",
-        metavar="PATH",
-        type=Path,
-        help="embeddings: feature file .npy or .pt, [N, dim] or [N, T, dim]; speech: a folder of WAV/FLAC files",
+        "--devices",
+        metavar="N",
+        type=_argument_type(Setting("devices", _check_processes, int)),
+        help="processes on this machine (Lightning DDP, gloo on CPU; default 1); --batch-size is split among all",
     )
     parser.add_argument(
-        "--frame-rate",
-        metavar="HZ",
-        type=_positive_float("--frame-rate"),
-        help="embeddings: vectors per second, to report kbps",
+        "--num-nodes",
+        metavar="M",
+        type=_argument_type(Setting("num_nodes", _check_processes, int)),
+        help="machines, passed to Lightning (default 1; needs a cluster environment such as SLURM or torchrun)",
+    )
+    parser.add_argument(
+        "--threads",
+        metavar="N",
+        type=_argument_type(Setting("threads", _check_threads, int)),
+        help=f"torch intra-op threads (default: this machine's {os.cpu_count() or 1}; 1 with --quick)",
     )
     return parser
 
 
-def _settings(args: argparse.Namespace, recipe: Any, stored: dict[str, Any] | None) -> dict[str, Any]:
-    """The run's settings: command line, then the checkpoint's (on resume), then the recipe defaults."""
-    given = {
-        "stages": args.stages,
-        "entries": args.entries,
-        "code_dim": args.code_dim,
-        "steps": args.steps,
-        "batch_size": args.batch_size,
-        "seed": args.seed,
-        "data": str(args.data) if args.data else None,
-        "frame_rate": args.frame_rate,
-    }
-    if stored is not None:
-        if stored.get("recipe") != args.name:
-            raise fail("--resume", f"a checkpoint of the {args.name!r} recipe", f"one of {stored.get('recipe')!r}")
-        for key in _FIXED_ON_RESUME:
-            mine = str(Path(given[key]).resolve()) if key == "data" and given[key] else given[key]
-            if mine is not None and mine != stored.get(key):
-                raise fail(
-                    f"--{key.replace('_', '-')}", f"{stored.get(key)!r} as in the checkpoint (or left out)", given[key]
-                )
-        quick = bool(stored.get("quick")) or args.quick
-        base = {k: v for k, v in stored.items() if k in given}
-    else:
-        quick = args.quick
-        base = {}
-    defaults = dict(recipe.DEFAULTS) | (recipe.QUICK if quick else {})
-    config = {"recipe": args.name, "quick": quick, "seed": 0, "data": None, "frame_rate": None} | defaults
-    config |= {k: v for k, v in base.items() if v is not None}
-    config |= {k: v for k, v in given.items() if v is not None}
-    if config["code_dim"] is None:
-        config["code_dim"] = 0  # filled in once the input size is known
-    return config
+@dataclass
+class _Run:
+    """Everything a checked command line leads to; nothing written yet."""
+
+    spec: RecipeSpec
+    recipe: Recipe
+    settings: dict[str, Any]
+    prepared: Prepared
+    module: Any
+    resume: dict[str, Any] | None
+    out: Path
+    threads: int
 
 
 def main(argv: list[str] | None = None) -> int:
-    """Run the command; returns the exit status (0 done, 2 bad input)."""
+    """Run the command; returns the exit status (0 done, 2 bad input, 130 interrupted)."""
     started = time.perf_counter()
+    if not _is_rank_zero():  # rank zero alone speaks and writes
+        sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - for the life of this worker process
     try:
         args = build_parser().parse_args(argv)
     except _UsageError as exc:
         print(f"{PROG}: error: {exc} (see {PROG} --help)", file=sys.stderr)
-        return 2
+        return EXIT_BAD_INPUT
     except SystemExit as exc:  # --help
         return int(exc.code or 0)
     try:
-        recipe, config, data, resume, out = _validate(args)
-    except RvqlayerError as exc:
+        run = _validate(args)
+        from ._out_dir import make_output_dir
+
+        make_output_dir(run.out)
+    except RecipeInputError as exc:
         print(f"{PROG}: error: {exc}", file=sys.stderr)
-        return 2
+        return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print(f"{PROG}: interrupted before anything was written", file=sys.stderr)
+        return EXIT_INTERRUPTED
 
-    from ._outputs import make_output_dir, summary
+    import torch
 
+    from ._checkpoint import CHECKPOINT
+    from ._outputs import summary
+    from ._training import OtherRankDone, TrainingInterrupted
+
+    again = f"{PROG} {run.spec.name} --resume --out {shlex.quote(str(run.out))}"
+    threads_before = torch.get_num_threads()
+    torch.set_num_threads(run.threads)
     try:
-        make_output_dir(out)
-    except RvqlayerError as exc:
-        print(f"{PROG}: error: {exc}", file=sys.stderr)
-        return 2
-    from ._training import CHECKPOINT
-
-    if resume is None and (out / CHECKPOINT).exists():
-        print(f"note: {out / CHECKPOINT} exists; starting afresh and replacing it (--resume continues it)")
-    table, files = recipe.run(config, data, out, resume)
+        if run.resume is None and (run.out / CHECKPOINT).exists():
+            print(f"note: {run.out / CHECKPOINT} exists; starting afresh and replacing it (--resume continues it)")
+        table, files = run.recipe.run(run.module, run.settings, run.prepared, run.out, run.resume)
+    except OtherRankDone:
+        return 0
+    except TrainingInterrupted as stop:
+        if not _is_rank_zero():
+            return EXIT_INTERRUPTED
+        print(f"{PROG}: interrupted at step {stop.step}; checkpoint written; continue with: {again}", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except KeyboardInterrupt:
+        kept = "the last checkpoint is kept" if (run.out / CHECKPOINT).exists() else "no checkpoint yet"
+        print(f"{PROG}: interrupted; {kept}; continue with: {again}", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    finally:
+        torch.set_num_threads(threads_before)
+    settings = run.settings
     print()
-    print(f"rate-quality table ({args.name}, {config['steps']} steps, seed {config['seed']}):")
+    print(f"rate-quality table ({run.spec.name}, {settings['steps']} steps, seed {settings['seed']}):")
     print(table.format())
     for problem in table.worse_with_more_stages():
         print(f"note: quality got worse with more stages: {problem}")
     print()
-    print(summary(out, files))
+    print(summary(run.out, files))
     print(f"done in {time.perf_counter() - started:.1f} s")
     return 0
 
 
-def _validate(args: argparse.Namespace) -> tuple[Any, dict[str, Any], Any, dict[str, Any] | None, Path]:
-    """Check everything given on the command line; writes nothing."""
-    if args.data is not None and args.name not in _TAKES_DATA:
-        raise fail("--data", f"given only with the {' or '.join(_TAKES_DATA)} recipe", f"--data with {args.name!r}")
-    if args.frame_rate is not None and args.name != "embeddings":
-        raise fail("--frame-rate", "given only with the embeddings recipe", f"--frame-rate with {args.name!r}")
+def _validate(args: argparse.Namespace) -> _Run:
+    """Check everything given on the command line (and the checkpoint, with --resume); writes nothing."""
+    spec = RECIPES[args.name]
+    for key in ("data", "frame_rate"):
+        if getattr(args, key) is not None and key not in spec.options:
+            takers = " or ".join(repr(s.name) for s in RECIPES.values() if key in s.options)
+            flag = SETTINGS[key].flag
+            raise input_error(flag, f"given only with the {takers} recipe", f"{flag} with {args.name!r}")
     out = args.out if args.out is not None else Path("runs") / args.name
-    from ._outputs import check_output_dir
+    from ._out_dir import check_output_dir
 
     check_output_dir(out)
-    recipe = importlib.import_module(f"recipes.{args.name}")
-    stored = None
-    resume = None
-    if args.resume:
-        from ._training import CHECKPOINT, read_checkpoint
+    recipe = spec.load()
+    from ._checkpoint import CHECKPOINT, check_resumable, read_checkpoint
+    from ._training import monitor_callbacks
 
+    resume, stored = None, None
+    if args.resume:
         resume = read_checkpoint(out / CHECKPOINT)
-        stored = resume["recipe"]
-        if not isinstance(stored, dict):
-            raise fail("--resume", "a checkpoint written by a recipe", "one without its settings")
-    config = _settings(args, recipe, stored)
-    data = recipe.prepare(config)
-    if stored is not None and stored.get("data_shape") not in (None, config.get("data_shape")):
-        raise fail(
+        stored = check_stored(resume["recipe"], spec, repr(str(out / CHECKPOINT)))
+    given = {key: getattr(args, key) for key in SETTINGS}
+    if given["data"] is not None:
+        given["data"] = str(given["data"])
+    settings = combine(given, stored, spec, args.quick)
+    processes = (args.devices or 1) * (args.num_nodes or 1)
+    if settings["batch_size"] % processes:
+        raise input_error(
+            "--batch-size", f"a multiple of the {processes} processes (--devices x --num-nodes)", settings["batch_size"]
+        )
+    if processes > 1:  # how the run is spread, not what it computes: stored, never read back on --resume
+        settings["devices"], settings["num_nodes"] = args.devices or 1, args.num_nodes or 1
+    prepared = recipe.prepare(settings)
+    if settings["data"]:
+        settings["data"] = str(Path(settings["data"]).resolve())
+    if prepared.shape is not None:
+        settings["data_shape"] = list(prepared.shape)
+    if (
+        prepared.shape is not None
+        and stored is not None
+        and stored.get("data_shape") not in (None, list(prepared.shape))
+    ):
+        raise input_error(
             "--data",
             f"features of shape {stored['data_shape']} as in the checkpoint",
-            f"shape {config.get('data_shape')}",
+            f"shape {settings.get('data_shape')}",
         )
-    limit = recipe.max_code_dim(config, data)
-    if config["code_dim"] == 0:
-        config["code_dim"] = limit
-    if not 1 <= config["code_dim"] <= limit:
-        raise fail("--code-dim", f"an int in [1, {limit}] (the quantizer's input size)", config["code_dim"])
-    return recipe, config, data, resume, out
+    limit = prepared.input_size
+    if settings["code_dim"] is not None and not 1 <= settings["code_dim"] <= limit:
+        raise input_error("--code-dim", f"an int in [1, {limit}] (the quantizer's input size)", settings["code_dim"])
+    module = recipe.build(settings, prepared)
+    if resume is not None:
+        check_resumable(resume, module, out / CHECKPOINT, monitor_callbacks())
+    threads = args.threads or (1 if settings["quick"] else (os.cpu_count() or 1))
+    return _Run(spec, recipe, settings, prepared, module, resume, out, threads)
 
 
 if __name__ == "__main__":

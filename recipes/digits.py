@@ -19,36 +19,36 @@ from torch import nn
 
 from rvqlayer import MultiStageQuantizer
 
-from . import _defaults, _outputs, _plots, _training
-from ._outputs import Measure
+from . import _outputs, _plots, _training
+from ._checkpoint import CHECKPOINT
+from ._table import Measure, RateTable, rate_table
+from .registry import RECIPES, Prepared, Settings
 
 NAME = "digits"
 LATENT = 32
 HELD_OUT = 300
-DEFAULTS = _defaults.DEFAULTS[NAME]
-QUICK = _defaults.QUICK[NAME]
+SAVE_EVERY = 100  # steps between checkpoints
+DEFAULTS = RECIPES[NAME].defaults
+QUICK = RECIPES[NAME].quick
 MEASURES = [Measure("MSE", "", False)]
 
 
-def max_code_dim(config: dict[str, Any], data: Any) -> int:
-    return LATENT
-
-
-def prepare(config: dict[str, Any]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Train and held-out images ``[n, 64]`` in [0, 1] and their labels (seeded split)."""
+def prepare(settings: Settings) -> Prepared:
+    """Train and held-out images ``[n, 64]`` in [0, 1] and their labels (seeded split), as ``data``."""
     from sklearn.datasets import load_digits
 
     images, labels = load_digits(return_X_y=True)
-    order = np.random.default_rng([config["seed"], 7]).permutation(len(images))
+    order = np.random.default_rng([settings["seed"], 7]).permutation(len(images))
     images = (images[order] / 16.0).astype(np.float32)
     labels = labels[order]
-    return images[HELD_OUT:], labels[HELD_OUT:], images[:HELD_OUT], labels[:HELD_OUT]
+    data = (images[HELD_OUT:], labels[HELD_OUT:], images[:HELD_OUT], labels[:HELD_OUT])
+    return Prepared(data, LATENT, source="scikit-learn's load_digits")
 
 
 class DigitAutoencoder(nn.Module):
     """Image ``[batch, 64]`` -> vector ``[batch, 32]`` -> quantizer -> image ``[batch, 64]`` in (0, 1)."""
 
-    def __init__(self, stages: int, entries: int, code_dim: int) -> None:
+    def __init__(self, stages: int, entries: int, code_dim: int | None) -> None:
         super().__init__()
         self.encoder = nn.Sequential(
             nn.Linear(64, 256), nn.ELU(), nn.Linear(256, 128), nn.ELU(), nn.Linear(128, LATENT)
@@ -77,7 +77,6 @@ class DigitModule(_training.RecipeModule):
     def __init__(self, config: dict[str, Any]) -> None:
         super().__init__(config, lr=2e-3)
         self.model = DigitAutoencoder(config["stages"], config["entries"], config["code_dim"])
-        self.quantizer = self.model.quantizer
 
     def losses(self, batch: torch.Tensor) -> dict[str, torch.Tensor]:
         recon, out = self.model(batch)
@@ -99,12 +98,15 @@ def _examples(labels: np.ndarray) -> np.ndarray:
     return np.array([int(np.flatnonzero(labels == c)[0]) for c in range(10) if np.any(labels == c)])
 
 
+def build(settings: Settings, prepared: Prepared) -> DigitModule:
+    torch.manual_seed(settings["seed"])
+    return DigitModule(dict(settings))
+
+
 def run(
-    config: dict[str, Any], data: Any, out: Path, resume: dict[str, Any] | None
-) -> tuple[_outputs.RateTable, dict[str, Path]]:
-    train, _, test, test_labels = data
-    torch.manual_seed(config["seed"])
-    module = DigitModule(config)
+    module: DigitModule, config: Settings, prepared: Prepared, out: Path, resume: dict[str, Any] | None
+) -> tuple[RateTable, dict[str, Path]]:
+    train, _, test, test_labels = prepared.data
     print(
         f"digits: {len(train)} training and {len(test)} held-out images, "
         f"{_training.count_parameters(module.model):,} parameters, {config['steps']} steps of {config['batch_size']}",
@@ -119,7 +121,7 @@ def run(
         resume=resume,
         val_batches=val,
         val_every=_training.val_interval(config),
-        save_every=500,
+        save_every=SAVE_EVERY,
     )
 
     model = module.model.eval()
@@ -131,18 +133,18 @@ def run(
         recon[k] = model.decode(codes[:, :k]).numpy()
         return {"MSE": float(np.mean((recon[k] - test) ** 2))}
 
-    table = _outputs.rate_table(model.quantizer, measure, MEASURES, "bits/image", lambda bits: bits)
+    table = rate_table(model.quantizer, measure, MEASURES, "bits/image", lambda bits: bits)
     files = _outputs.write_table(out, table, {"recipe": NAME, "held_out_images": len(test), "pixel_scale": "0..1"})
     pick = _examples(test_labels)
     stages = config["stages"]
-    columns = [("original", test[pick])]
+    rows = [("original", test[pick])]
     for k in sorted({1, min(2, stages), stages}):
-        columns.append((f"{k} stage{'s' * (k > 1)}\n{table.rows[k - 1].bits_per_vector:.0f} bits", recon[k][pick]))
+        rows.append((f"{k} stage{'s' * (k > 1)}\n{table.rows[k - 1].bits_per_vector:.0f} bits", recon[k][pick]))
     files["reconstructions"] = _plots.image_grid_png(
-        out / "reconstructions.png", columns, (8, 8), "held-out digits: originals and reconstructions"
+        out / "reconstructions.png", rows, (8, 8), "held-out digits: originals and reconstructions"
     )
     files["quality vs bits"] = _plots.rate_quality_png(out / "quality_vs_bits.png", table, "digits: held-out images")
     files.update(_outputs.write_health(out, model.quantizer))
-    files["checkpoint"] = out / _training.CHECKPOINT
+    files["checkpoint"] = out / CHECKPOINT
     files["logs (TensorBoard)"] = out / "logs"
     return table, files

@@ -28,19 +28,24 @@ import torch
 import torch.nn.functional as F
 
 from rvqlayer import MultiStageQuantizer
-from rvqlayer._checks import fail
 from rvqlayer.export import save_codebooks
+from rvqlayer.files import atomic_write
 from rvqlayer.theory import covariance_eigenvalues, water_filling_distortion
 
-from . import _defaults, _outputs, _plots, _training
-from ._outputs import Measure
+from . import _outputs, _plots, _training
+from ._checkpoint import CHECKPOINT
+from ._errors import input_error
+from ._table import Measure, RateTable, rate_table
+from .registry import RECIPES, Prepared, Settings
 
 NAME = "embeddings"
-DEFAULTS = _defaults.DEFAULTS[NAME]
-QUICK = _defaults.QUICK[NAME]
+DEFAULTS = RECIPES[NAME].defaults
+QUICK = RECIPES[NAME].quick
 DEMO = {False: (16384, 16, 12), True: (4096, 16, 12)}  # (vectors, dim, mixture components)
+# "error share": sum of squared errors / sum of squared inputs over all fitted vectors, in the input space.
+# Not the health report's `energy_left` (a moving average over training batches, in the lookup space).
 # "bound SNR": what reverse water-filling allows a Gaussian with the data's covariance (rvqlayer.theory).
-MEASURES = [Measure("SNR", "dB", True), Measure("energy left", "%", False), Measure("bound SNR", "dB", True)]
+MEASURES = [Measure("SNR", "dB", True), Measure("error share", "%", False), Measure("bound SNR", "dB", True)]
 _FLOAT_DTYPES = (np.float16, np.float32, np.float64)
 
 
@@ -60,35 +65,35 @@ def _load(path: Path) -> np.ndarray:
     """Read ``path`` without running code from it; every failure is a clear error."""
     shown = repr(str(path))
     if not path.exists():
-        raise fail("--data", "an existing .npy or .pt file", f"{shown} (no such file)")
+        raise input_error("--data", "an existing .npy or .pt file", f"{shown} (no such file)")
     if not path.is_file():
-        raise fail("--data", "a .npy or .pt file", f"{shown}, which is not a regular file")
+        raise input_error("--data", "a .npy or .pt file", f"{shown}, which is not a regular file")
     suffix = path.suffix.lower()
     if suffix not in (".npy", ".pt", ".pth"):
-        raise fail("--data", "a file ending in .npy or .pt", shown)
+        raise input_error("--data", "a file ending in .npy or .pt", shown)
     try:
         with open(path, "rb") as f:
             f.read(1)
     except OSError as exc:
-        raise fail("--data", "a readable file", f"{shown} ({exc.strerror or type(exc).__name__})") from None
+        raise input_error("--data", "a readable file", f"{shown} ({exc.strerror or type(exc).__name__})") from None
     if suffix == ".npy":
         try:
             array = np.load(path, allow_pickle=False)
         except Exception as exc:  # bad header, short file, object array (needs pickle), ...
-            raise fail("--data", "a valid .npy array file", f"{shown} ({_reason(exc)})") from None
+            raise input_error("--data", "a valid .npy array file", f"{shown} ({_reason(exc)})") from None
         if not isinstance(array, np.ndarray):
-            raise fail("--data", "a single array (.npy)", f"{shown} holding {type(array).__name__}")
+            raise input_error("--data", "a single array (.npy)", f"{shown} holding {type(array).__name__}")
         if array.dtype not in _FLOAT_DTYPES:
-            raise fail("--data", "float16, float32 or float64 values", f"dtype {array.dtype} in {shown}")
+            raise input_error("--data", "float16, float32 or float64 values", f"dtype {array.dtype} in {shown}")
         return np.asarray(array, dtype=np.float32)
     try:
         obj = torch.load(path, map_location="cpu", weights_only=True)
     except Exception as exc:  # not a torch file, truncated, or holds objects weights_only refuses
-        raise fail("--data", "a tensor saved with torch.save (.pt)", f"{shown} ({_reason(exc)})") from None
+        raise input_error("--data", "a tensor saved with torch.save (.pt)", f"{shown} ({_reason(exc)})") from None
     if not isinstance(obj, torch.Tensor):
-        raise fail("--data", "a single tensor (.pt)", f"{shown} holding {type(obj).__name__}")
+        raise input_error("--data", "a single tensor (.pt)", f"{shown} holding {type(obj).__name__}")
     if not obj.is_floating_point():
-        raise fail("--data", "a floating-point tensor", f"dtype {obj.dtype} in {shown}")
+        raise input_error("--data", "a floating-point tensor", f"dtype {obj.dtype} in {shown}")
     return obj.detach().float().numpy()
 
 
@@ -97,36 +102,29 @@ def _reason(exc: Exception) -> str:
     return f"{type(exc).__name__}: {text[:120]}" if text else type(exc).__name__
 
 
-def check_features(x: np.ndarray, name: str) -> np.ndarray:
+def check_feature_file(x: np.ndarray, name: str) -> np.ndarray:
     """Fail unless ``x`` is ``[N, dim]`` or ``[N, T, dim]`` with finite values; returns it."""
     if x.ndim not in (2, 3) or 0 in x.shape:
-        raise fail(
+        raise input_error(
             "--data", "an array of shape [N, dim] or [N, T, dim] with no empty axis", f"shape {x.shape} in {name}"
         )
     finite = np.isfinite(x)
     if not finite.all():
         bad = int(x.size - finite.sum())
-        raise fail("--data", "finite values (no NaN or Inf)", f"{bad} non-finite values in {name}")
+        raise input_error("--data", "finite values (no NaN or Inf)", f"{bad} non-finite values in {name}")
     return x
 
 
-def prepare(config: dict[str, Any]) -> dict[str, Any]:
-    """Load and check the features (or build the demo mixture); writes nothing."""
-    if config["data"]:
-        path = Path(config["data"])
-        x = check_features(_load(path), repr(str(path)))
-        source = str(path.resolve())
-        config["data"] = source
-    else:
-        n, dim, comps = DEMO[bool(config["quick"])]
-        x = demo_features(config["seed"], n, dim, comps)
-        source = f"synthetic Gaussian mixture ({n} x {dim}, {comps} components, seed {config['seed']})"
-    config["data_shape"] = list(x.shape)
-    return {"features": x, "source": source}
-
-
-def max_code_dim(config: dict[str, Any], data: dict[str, Any]) -> int:
-    return int(data["features"].shape[-1])
+def prepare(settings: Settings) -> Prepared:
+    """Load and check the features ``[N, dim]`` or ``[N, T, dim]`` (or build the demo mixture); writes nothing."""
+    if settings["data"]:
+        path = Path(settings["data"])
+        x = check_feature_file(_load(path), repr(str(path)))
+        return Prepared(x, int(x.shape[-1]), shape=tuple(x.shape), source=str(path.resolve()))
+    n, dim, comps = DEMO[bool(settings["quick"])]
+    x = demo_features(settings["seed"], n, dim, comps)
+    source = f"synthetic Gaussian mixture ({n} x {dim}, {comps} components, seed {settings['seed']})"
+    return Prepared(x, dim, source=source)
 
 
 class EmbeddingModule(_training.RecipeModule):
@@ -160,17 +158,20 @@ def _batch_maker(x: np.ndarray, seed: int, batch_size: int):
     return make, per_pass
 
 
+def build(settings: Settings, prepared: Prepared) -> EmbeddingModule:
+    torch.manual_seed(settings["seed"])
+    return EmbeddingModule(dict(settings), prepared.input_size)
+
+
 def run(
-    config: dict[str, Any], data: dict[str, Any], out: Path, resume: dict[str, Any] | None
-) -> tuple[_outputs.RateTable, dict[str, Path]]:
-    x = data["features"]
+    module: EmbeddingModule, config: Settings, prepared: Prepared, out: Path, resume: dict[str, Any] | None
+) -> tuple[RateTable, dict[str, Path]]:
+    x = prepared.data
     dim = x.shape[-1]
-    torch.manual_seed(config["seed"])
-    module = EmbeddingModule(config, dim)
     make, per_pass = _batch_maker(x, config["seed"], config["batch_size"])
     vectors = int(np.prod(x.shape[:-1]))
     print(
-        f"embeddings: {data['source']}: {vectors:,} vectors of {dim}; {config['steps']} steps of "
+        f"embeddings: {prepared.source}: {vectors:,} vectors of {dim}; {config['steps']} steps of "
         f"{config['batch_size']} items = {config['steps'] / per_pass:.1f} moving-average passes",
         flush=True,
     )
@@ -189,7 +190,7 @@ def run(
         bound = water_filling_distortion(eigenvalues, q.bits_per_vector(stages=k))
         return {
             "SNR": 10 * math.log10(centred / max(err, 1e-300)),
-            "energy left": 100.0 * err / max(energy, 1e-300),
+            "error share": 100.0 * err / max(energy, 1e-300),
             "bound SNR": 10 * math.log10(max(spread, 1e-300) / max(bound, 1e-300)),
         }
 
@@ -198,15 +199,14 @@ def run(
         unit, rate = "kbps", (lambda bits: config["frame_rate"] * bits / 1000.0)
     else:
         unit, rate = "bits/item", (lambda bits: bits * per_item)
-    table = _outputs.rate_table(q, measure, MEASURES, unit, rate)
-    files = _outputs.write_table(out, table, {"recipe": NAME, "data": data["source"], "shape": list(x.shape)})
-    with _outputs.atomic_path(out / "codes.npy") as tmp:
-        with open(tmp, "wb") as f:
-            np.save(f, codes.numpy())
+    table = rate_table(q, measure, MEASURES, unit, rate)
+    files = _outputs.write_table(out, table, {"recipe": NAME, "data": prepared.source, "shape": list(x.shape)})
+    with atomic_write(out / "codes.npy") as f:
+        np.save(f, codes.numpy())
     files["codes"] = out / "codes.npy"
     files["codebooks"] = save_codebooks(q, out / "codebooks.safetensors")
     files["quality vs bits"] = _plots.rate_quality_png(out / "quality_vs_bits.png", table, "embeddings")
     files.update(_outputs.write_health(out, q))
-    files["checkpoint"] = out / _training.CHECKPOINT
+    files["checkpoint"] = out / CHECKPOINT
     files["logs (TensorBoard)"] = out / "logs"
     return table, files

@@ -33,11 +33,14 @@ import torch.nn.functional as F
 from torch import nn
 
 from rvqlayer import MultiStageQuantizer
+from rvqlayer.files import atomic_path
 
-from . import _defaults, _outputs, _plots, _speech_data, _speech_metrics, _training
-from ._audio import stft_loss
-from ._outputs import Measure, RateRow, RateTable, atomic_path
+from . import _outputs, _plots, _speech_data, _speech_metrics, _training
+from ._audio import stft_loss, write_clip_set
+from ._checkpoint import CHECKPOINT
 from ._speech_scalar import fit_scalar_quantizer
+from ._table import Measure, RateRow, RateTable, rate_table
+from .registry import RECIPES, Prepared, Settings
 
 NAME = "speech"
 RATE = _speech_data.RATE
@@ -51,8 +54,8 @@ WAVE_WEIGHT = 10.0  # as in the tones recipe
 BYPASS = 0.2  # share of training excerpts that skip the quantizer (see the module docstring)
 STAGE_DROPOUT = 0.5
 
-DEFAULTS = _defaults.DEFAULTS[NAME]
-QUICK = _defaults.QUICK[NAME]
+DEFAULTS = RECIPES[NAME].defaults
+QUICK = RECIPES[NAME].quick
 # (training utterances, held-out clips, seconds per held-out clip at most) for the default run and --quick
 SIZES = {False: (300, 8, 4.0), True: (48, 3, 3.0)}
 MEASURES = [
@@ -64,23 +67,17 @@ MEASURES = [
 ]
 
 
-def max_code_dim(config: dict[str, Any], data: Any) -> int:
-    return LATENT
-
-
-def prepare(config: dict[str, Any]) -> _speech_data.SpeechAudio | None:
-    """With ``--data``: read and check the user's folder (writes nothing). Else None: synthesised in ``run``."""
-    if not config.get("data"):
-        return None
-    _, n_clips, seconds = SIZES[bool(config["quick"])]
-    folder = Path(config["data"])
+def prepare(settings: Settings) -> Prepared:
+    """With ``--data``: read and check the user's folder (writes nothing). Else synthesised in ``run``."""
+    if not settings.get("data"):
+        return Prepared(None, LATENT, source=f"synthetic speech (eSpeak NG), seed {settings['seed']}")
+    _, n_clips, seconds = SIZES[bool(settings["quick"])]
+    folder = Path(settings["data"])
     audio = _speech_data.from_folder(folder, SEGMENT, seconds, n_clips)
-    config["data"] = str(folder.resolve())
-    config["data_shape"] = [len(audio.train), sum(len(c) for c in audio.train)]
-    return audio
+    shape = (len(audio.train), sum(len(c) for c in audio.train))
+    return Prepared(audio, LATENT, shape=shape, source=audio.source)
 
 
-# -------------------------------------------------------------------- model
 class _ResidualUnit(nn.Module):
     def __init__(self, channels: int, dilation: int) -> None:
         super().__init__()
@@ -157,7 +154,6 @@ class SpeechModule(_training.RecipeModule):
     def __init__(self, config: dict[str, Any]) -> None:
         super().__init__(config, lr=2e-3)
         self.codec = SpeechCodec(config["stages"], config["entries"], config["code_dim"])
-        self.quantizer = self.codec.quantizer
 
     def losses(self, batch: torch.Tensor) -> dict[str, torch.Tensor]:
         wave = batch.unsqueeze(1)
@@ -258,19 +254,23 @@ def _pad(x: np.ndarray) -> torch.Tensor:
     return torch.from_numpy(np.pad(x, (0, n - len(x)))).reshape(1, 1, n)
 
 
+def build(settings: Settings, prepared: Prepared) -> SpeechModule:
+    torch.manual_seed(settings["seed"])
+    return SpeechModule(dict(settings))
+
+
 def run(
-    config: dict[str, Any], data: _speech_data.SpeechAudio | None, out: Path, resume: dict[str, Any] | None
+    module: SpeechModule, config: Settings, prepared: Prepared, out: Path, resume: dict[str, Any] | None
 ) -> tuple[SpeechTable, dict[str, Path]]:
     """Train (or continue), evaluate on held-out clips, write every output; returns the table and files."""
     seed = config["seed"]
     n_train, n_clips, seconds = SIZES[bool(config["quick"])]
+    data = prepared.data
     if data is None:
         data = _speech_data.synthetic(seed, n_train, n_clips)
         data.held_out = [c[: int(seconds * RATE)] for c in data.held_out]
     if _speech_metrics.PESQ_MISSING:
         print(f"note: {_speech_metrics.PESQ_MISSING}", flush=True)
-    torch.manual_seed(seed)
-    module = SpeechModule(config)
     val = [torch.from_numpy(np.stack([np.pad(c[:SEGMENT], (0, max(0, SEGMENT - len(c)))) for c in data.held_out[:4]]))]
     print(
         f"speech: {data.source}\n"
@@ -305,7 +305,7 @@ def run(
         recon[k] = [decode(codec.quantizer.decode(c[..., :k]), x) for c, x in zip(codes, refs)]
         return _speech_metrics.speech_figures(refs, recon[k])
 
-    stage_table = _outputs.rate_table(codec.quantizer, measure, MEASURES, "kbps", lambda b: FRAME_RATE * b / 1000.0)
+    stage_table = rate_table(codec.quantizer, measure, MEASURES, "kbps", lambda b: FRAME_RATE * b / 1000.0)
     coded = [
         entropy_coded_kbps(codec.quantizer, [c[..., : r.stages] for c in codes], total_seconds)
         for r in stage_table.rows
@@ -334,10 +334,10 @@ def run(
     )
     stages = config["stages"]
     wanted = sorted({1, max(1, stages // 2), stages})
-    files.update(_write_clips(out / "audio", refs[0], {k: recon[k][0] for k in wanted}))
+    files.update(write_clip_set(out / "audio", refs[0], {k: recon[k][0] for k in wanted}, RATE))
     files["PESQ and STOI vs bitrate"] = _plot(out / "quality_vs_bitrate.png", table)
     files.update(_outputs.write_health(out, codec.quantizer))
-    files["checkpoint"] = out / _training.CHECKPOINT
+    files["checkpoint"] = out / CHECKPOINT
     files["logs (TensorBoard)"] = out / "logs"
     return table, files
 
@@ -350,30 +350,6 @@ def _fit_scalar(codec: SpeechCodec, clips: list[np.ndarray], seed: int, bits: in
 
 
 # ------------------------------------------------------------------ outputs
-PEAK_DBFS = -1.0
-
-
-def _write_clips(folder: Path, original: np.ndarray, decoded: dict[int, np.ndarray]) -> dict[str, Path]:
-    """16-bit WAVs of the held-out clip and its decodings, all scaled by one common gain.
-
-    The gain puts the loudest of these files at ``PEAK_DBFS``, so the files
-    keep their level relative to each other and none of them clips.
-    """
-    import soundfile
-
-    peak = max(float(np.abs(x).max()) for x in [original, *decoded.values()])
-    gain = 10 ** (PEAK_DBFS / 20) / peak if peak > 0 else 0.0
-    named = {"original clip": ("original.wav", original)}
-    for k, x in decoded.items():
-        named[f"decoded, {k} stage{'s' * (k > 1)}"] = (f"decoded_{k}_stages.wav", x)
-    files = {}
-    for what, (name, x) in named.items():
-        with atomic_path(folder / name) as tmp:
-            soundfile.write(str(tmp), np.clip(x * gain, -1.0, 1.0), RATE, subtype="PCM_16", format="WAV")
-        files[what] = folder / name
-    return files
-
-
 def _plot(path: Path, table: SpeechTable) -> Path:
     """PESQ and STOI against kbps; the reference rows as horizontal lines."""
     plt = _plots._pyplot()

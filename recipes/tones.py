@@ -24,10 +24,12 @@ from torch import nn
 
 from rvqlayer import MultiStageQuantizer
 
-from . import _defaults, _outputs, _plots, _training
-from ._audio import log_spectral_distance_db, snr_db, stft_loss, write_wav
-from ._outputs import Measure
+from . import _outputs, _plots, _training
+from ._audio import log_spectral_distance_db, snr_db, stft_loss, write_clip_set
+from ._checkpoint import CHECKPOINT
 from ._synth import RATE, SPLIT_HELD_OUT, SPLIT_TRAIN, render_batch
+from ._table import Measure, RateTable, rate_table
+from .registry import RECIPES, Prepared, Settings
 
 NAME = "tones"
 HOP = 64  # samples per frame
@@ -37,19 +39,15 @@ CHANNELS = 96
 SEGMENT = 128 * HOP  # training excerpts of 8192 samples (0.512 s)
 WAVE_WEIGHT = 10.0  # with weight 1 the STFT terms dominated and some runs learned a sign-flipped output (-6 dB SNR)
 
-DEFAULTS = _defaults.DEFAULTS[NAME]
-QUICK = _defaults.QUICK[NAME]
+DEFAULTS = RECIPES[NAME].defaults
+QUICK = RECIPES[NAME].quick
 EVAL_CLIPS = {False: (8, 4.0), True: (2, 3.0)}  # (clips, seconds each) for default and --quick
 MEASURES = [Measure("SNR", "dB", True), Measure("LSD", "dB", False)]
 
 
-def max_code_dim(config: dict[str, Any], data: Any) -> int:
-    return LATENT
-
-
-def prepare(config: dict[str, Any]) -> None:
-    """Nothing to load: the audio is generated on the fly."""
-    return None
+def prepare(settings: Settings) -> Prepared:
+    """Nothing to load: the audio is generated on the fly from the seed."""
+    return Prepared(None, LATENT, source=f"synthetic 16 kHz audio, seed {settings['seed']}")
 
 
 class _ResidualUnit(nn.Module):
@@ -72,7 +70,7 @@ class ToneCodec(nn.Module):
     ``samples`` must be a multiple of 64.
     """
 
-    def __init__(self, stages: int, entries: int, code_dim: int) -> None:
+    def __init__(self, stages: int, entries: int, code_dim: int | None) -> None:
         super().__init__()
         c = CHANNELS
         self.encoder = nn.Sequential(
@@ -112,7 +110,6 @@ class ToneModule(_training.RecipeModule):
     def __init__(self, config: dict[str, Any]) -> None:
         super().__init__(config, lr=2e-3)
         self.codec = ToneCodec(config["stages"], config["entries"], config["code_dim"])
-        self.quantizer = self.codec.quantizer
 
     def losses(self, batch: torch.Tensor) -> dict[str, torch.Tensor]:
         wave = batch.unsqueeze(1)
@@ -129,12 +126,15 @@ def _batch_maker(seed: int, batch_size: int):
     return make
 
 
+def build(settings: Settings, prepared: Prepared) -> ToneModule:
+    torch.manual_seed(settings["seed"])
+    return ToneModule(dict(settings))
+
+
 def run(
-    config: dict[str, Any], data: Any, out: Path, resume: dict[str, Any] | None
-) -> tuple[_outputs.RateTable, dict[str, Path]]:
+    module: ToneModule, config: Settings, prepared: Prepared, out: Path, resume: dict[str, Any] | None
+) -> tuple[RateTable, dict[str, Path]]:
     """Train (or continue), evaluate on held-out clips, write every output; returns the table and files."""
-    torch.manual_seed(config["seed"])
-    module = ToneModule(config)
     n_clips, seconds = EVAL_CLIPS[bool(config["quick"])]
     samples = int(seconds * RATE) // HOP * HOP
     held_out = render_batch(config["seed"], SPLIT_HELD_OUT, 0, n_clips, samples)
@@ -165,21 +165,19 @@ def run(
         recon[k] = y
         return {"SNR": snr_db(held_out, y), "LSD": log_spectral_distance_db(held_out, y)}
 
-    table = _outputs.rate_table(codec.quantizer, measure, MEASURES, "kbps", lambda bits: FRAME_RATE * bits / 1000.0)
+    table = rate_table(codec.quantizer, measure, MEASURES, "kbps", lambda bits: FRAME_RATE * bits / 1000.0)
     files = _outputs.write_table(
         out,
         table,
         {"recipe": NAME, "frame_rate": FRAME_RATE, "held_out_clips": n_clips, "clip_seconds": samples / RATE},
     )
     stages = config["stages"]
-    audio = out / "audio"
-    files["original clip"] = write_wav(audio / "original.wav", held_out[0], RATE)
-    for k in sorted({1, max(1, stages // 2), stages}):
-        files[f"decoded, {k} stage{'s' * (k > 1)}"] = write_wav(audio / f"decoded_{k}_stages.wav", recon[k][0], RATE)
+    decoded = {k: recon[k][0] for k in sorted({1, max(1, stages // 2), stages})}
+    files.update(write_clip_set(out / "audio", held_out[0], decoded, RATE))
     files["quality vs bitrate"] = _plots.rate_quality_png(
         out / "quality_vs_bitrate.png", table, "tones: held-out clips"
     )
     files.update(_outputs.write_health(out, codec.quantizer))
-    files["checkpoint"] = out / _training.CHECKPOINT
+    files["checkpoint"] = out / CHECKPOINT
     files["logs (TensorBoard)"] = out / "logs"
     return table, files

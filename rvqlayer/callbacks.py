@@ -15,15 +15,18 @@ from __future__ import annotations
 import importlib.util
 import math
 import os
-import warnings
+from dataclasses import asdict, dataclass, fields
 from typing import Any, Literal
 
 import pytorch_lightning as pl
 import torch
+from pytorch_lightning.utilities.rank_zero import rank_zero_info, rank_zero_warn
+from typing_extensions import override
 
 from ._checks import check_choice, check_float, check_int, fail
+from ._health_figure import health_figure
 from .files import atomic_path
-from .health import HealthReport
+from .health import HealthReport, StageHealth
 from .quantizer import MultiStageQuantizer
 
 OnCollapse = Literal["warn", "reseed", "stop"]
@@ -37,9 +40,64 @@ class CodebookCollapseWarning(UserWarning):
     """Issued (once per stage, on rank zero) when a codebook collapses."""
 
 
-def _settle_steps(ema_decay: float) -> int:
-    """Steps after which a moving average of decay ``g`` mostly reflects data: ``1 / (1 - g)``."""
+@dataclass
+class StageRecord:
+    """What the monitor remembers about one stage between checks (saved in checkpoints).
+
+    Attributes:
+        warned: a collapse warning was given for this stage.
+        peak: highest moving-average perplexity seen once the averages settled.
+        collapses: checks at which the stage was found collapsed.
+        forced_reseeds: reseeds the monitor requested (``on_collapse="reseed"``).
+    """
+
+    warned: bool = False
+    peak: float = 0.0
+    collapses: int = 0
+    forced_reseeds: int = 0
+
+
+_RECORD_FIELDS = tuple(f.name for f in fields(StageRecord))
+
+
+def settle_steps(ema_decay: float) -> int:
+    """Steps after which a moving average of decay ``g`` mostly reflects data: ``1 / (1 - g)``.
+
+    >>> settle_steps(0.99)
+    100
+    """
     return max(1, math.ceil(1.0 / (1.0 - ema_decay)))
+
+
+def updated_peak(peak: float, perplexity: float, settled: bool) -> float:
+    """The perplexity peak after a check: only values seen once the averages settled count."""
+    return max(peak, perplexity) if settled else peak
+
+
+def collapse_decision(
+    stage: StageHealth,
+    peak: float,
+    *,
+    trained: bool,
+    settled: bool,
+    warn_below: float,
+    perplexity_drop: float | None,
+) -> tuple[bool, str]:
+    """Whether a stage looks collapsed, and why (``""`` when it does not); pure.
+
+    Collapsed: usage below ``warn_below`` (0 turns this off), or, once the
+    moving averages have ``settled``, perplexity below ``peak /
+    perplexity_drop`` (``None`` turns this off). An untrained stage's figures
+    are start values and never count.
+    """
+    if not trained:
+        return False, ""
+    reasons = []
+    if warn_below > 0 and stage.usage < warn_below:
+        reasons.append(f"usage {stage.usage:.1%} < warn_below {warn_below:.1%}")
+    if settled and perplexity_drop is not None and stage.perplexity * perplexity_drop < peak:
+        reasons.append(f"perplexity fell from {peak:.1f} to {stage.perplexity:.1f} (> {perplexity_drop:g}x)")
+    return bool(reasons), "; ".join(reasons)
 
 
 class CodebookMonitor(pl.Callback):
@@ -63,8 +121,13 @@ class CodebookMonitor(pl.Callback):
     ``"stop"`` ends training (``trainer.should_stop``) with a message naming
     the module, the stage and its figures. At each validation epoch end
     (``plot=True``) one PNG goes to the trainer's log directory: sorted usage
-    counts and energy left per stage. At the end of fit the final health is
-    printed as a table.
+    counts and energy left per stage. At the end of fit the final health goes
+    out as a table through Lightning's ``rank_zero_info`` (its logger).
+
+    State (saved in Lightning checkpoints) is plain attributes: ``checks``,
+    ``last_step``, ``plots``, ``stop_message`` and ``records`` (per module
+    path, one :class:`StageRecord` per stage). The decision itself is the
+    pure function :func:`collapse_decision`.
 
     Args:
         every_n_steps: check interval in optimizer steps; ``None`` uses the
@@ -104,18 +167,16 @@ class CodebookMonitor(pl.Callback):
         self.plot = plot
         self.dead_below = None if dead_below is None else check_float("dead_below", dead_below, 0.0, 1.0, low_open=True)
         self._quantizers: dict[str, MultiStageQuantizer] = {}
-        self._state: dict[str, Any] = {
-            "version": _STATE_VERSION,
-            "checks": 0,
-            "last_step": -1,
-            "plots": 0,
-            "stop_message": None,
-            "modules": {},
-        }
+        self.checks = 0
+        self.last_step = -1
+        self.plots = 0
+        self.stop_message: str | None = None
+        self.records: dict[str, list[StageRecord]] = {}
         self.last_plot: str | None = None
 
     # ------------------------------------------------------------------ state
     @property
+    @override
     def state_key(self) -> str:
         return self._generate_state_key(
             every_n_steps=self.every_n_steps,
@@ -125,18 +186,22 @@ class CodebookMonitor(pl.Callback):
             dead_below=self.dead_below,
         )
 
+    @override
     def state_dict(self) -> dict[str, Any]:
         """Warnings given, perplexity peaks and counters, as plain Python values."""
-        s = self._state
         return {
-            "version": s["version"],
-            "checks": s["checks"],
-            "last_step": s["last_step"],
-            "plots": s["plots"],
-            "stop_message": s["stop_message"],
-            "modules": {path: {key: list(values) for key, values in m.items()} for path, m in s["modules"].items()},
+            "version": _STATE_VERSION,
+            "checks": self.checks,
+            "last_step": self.last_step,
+            "plots": self.plots,
+            "stop_message": self.stop_message,
+            "modules": {
+                path: {key: [asdict(r)[key] for r in records] for key in _RECORD_FIELDS}
+                for path, records in self.records.items()
+            },
         }
 
+    @override
     def load_state_dict(self, state_dict: dict[str, Any]) -> None:
         """Restore what :meth:`state_dict` returned; a foreign dict raises ``RvqlayerError``."""
         expected = "a CodebookMonitor state (version 1 with checks, last_step, plots, stop_message, modules)"
@@ -144,67 +209,49 @@ class CodebookMonitor(pl.Callback):
             ok = state_dict["version"] == _STATE_VERSION and isinstance(state_dict["modules"], dict)
             checks, last, plots = int(state_dict["checks"]), int(state_dict["last_step"]), int(state_dict["plots"])
             stop = state_dict["stop_message"]
-            modules = {}
+            records = {}
             for path, m in state_dict["modules"].items():
-                lists = {key: list(m[key]) for key in ("warned", "peak", "collapses", "forced_reseeds")}
+                lists = {key: list(m[key]) for key in _RECORD_FIELDS}
                 if len({len(v) for v in lists.values()}) != 1:
                     ok = False
-                modules[str(path)] = {
-                    "warned": [bool(v) for v in lists["warned"]],
-                    "peak": [float(v) for v in lists["peak"]],
-                    "collapses": [int(v) for v in lists["collapses"]],
-                    "forced_reseeds": [int(v) for v in lists["forced_reseeds"]],
-                }
+                records[str(path)] = [
+                    StageRecord(bool(w), float(p), int(c), int(f))
+                    for w, p, c, f in zip(*(lists[key] for key in _RECORD_FIELDS))
+                ]
         except (KeyError, TypeError, ValueError, AttributeError) as err:
             raise fail("state_dict", expected, f"{type(state_dict).__name__} ({err!r})") from None
         if not ok or not (stop is None or isinstance(stop, str)):
             raise fail("state_dict", expected, f"keys {sorted(state_dict)}")
-        self._state = {
-            "version": _STATE_VERSION,
-            "checks": checks,
-            "last_step": last,
-            "plots": plots,
-            "stop_message": stop,
-            "modules": modules,
-        }
+        self.checks, self.last_step, self.plots, self.stop_message, self.records = checks, last, plots, stop, records
 
-    def _module_state(self, path: str, stages: int) -> dict[str, list]:
-        """Per-stage state lists of ``path``, created (or resized) for ``stages`` stages."""
-        m = self._state["modules"].setdefault(path, {"warned": [], "peak": [], "collapses": [], "forced_reseeds": []})
-        fill = {"warned": False, "peak": 0.0, "collapses": 0, "forced_reseeds": 0}
-        for key, values in m.items():
-            del values[stages:]
-            values.extend([fill[key]] * (stages - len(values)))
-        return m
-
-    @property
-    def stop_message(self) -> str | None:
-        """Why the monitor stopped training (``None`` while it has not)."""
-        return self._state["stop_message"]
+    def _records(self, path: str, stages: int) -> list[StageRecord]:
+        """The per-stage records of ``path``, created (or resized) for ``stages`` stages."""
+        records = self.records.setdefault(path, [])
+        del records[stages:]
+        records.extend(StageRecord() for _ in range(stages - len(records)))
+        return records
 
     # ------------------------------------------------------------------ hooks
+    @override
     def setup(self, trainer: pl.Trainer, pl_module: pl.LightningModule, stage: str) -> None:
         self._quantizers = {
             path or "model": module
             for path, module in pl_module.named_modules()
             if isinstance(module, MultiStageQuantizer)
         }
-        if not self._quantizers and trainer.is_global_zero:
-            warnings.warn(
-                "CodebookMonitor found no MultiStageQuantizer in the model; it will do nothing",
-                UserWarning,
-                stacklevel=2,
-            )
+        if not self._quantizers:
+            rank_zero_warn("CodebookMonitor found no MultiStageQuantizer in the model; it will do nothing")
 
+    @override
     def on_train_batch_end(
         self, trainer: pl.Trainer, pl_module: pl.LightningModule, outputs: Any, batch: Any, batch_idx: int
     ) -> None:
         step = int(trainer.global_step)
         every = self.every_n_steps or max(1, int(trainer.log_every_n_steps))
-        if not self._quantizers or step == self._state["last_step"] or step % every:
+        if not self._quantizers or step == self.last_step or step % every:
             return
-        self._state["last_step"] = step
-        self._state["checks"] += 1
+        self.last_step = step
+        self.checks += 1
         reports = {path: q.health(self.dead_below) for path, q in self._quantizers.items()}
         if trainer.is_global_zero:
             metrics = self._metrics(reports)
@@ -212,6 +259,7 @@ class CodebookMonitor(pl.Callback):
                 logger.log_metrics(metrics, step=step)
         self._check(trainer, reports, step)
 
+    @override
     def on_validation_epoch_end(self, trainer: pl.Trainer, pl_module: pl.LightningModule) -> None:
         if not self.plot or not self._quantizers or trainer.sanity_checking:
             return
@@ -219,18 +267,20 @@ class CodebookMonitor(pl.Callback):
         if not trainer.is_global_zero:
             return
         name = f"codebook_health_epoch{trainer.current_epoch:03d}_step{trainer.global_step:07d}.png"
-        self.last_plot = self._write_plot(os.path.join(directory, name), trainer.global_step)
-        self._state["plots"] += 1
+        path = os.path.join(directory, name)
+        figure = health_figure(self._quantizers, trainer.global_step, self.dead_below)
+        with atomic_path(path) as tmp:
+            figure.savefig(tmp, format="png", dpi=80)
+        self.last_plot = path
+        self.plots += 1
 
+    @override
     def on_fit_end(self, trainer: pl.Trainer, pl_module: pl.LightningModule) -> None:
-        if not trainer.is_global_zero:
-            return
         for path, q in self._quantizers.items():
-            print(
-                f"codebook health of `{path}` after {trainer.global_step} steps:\n{q.health(self.dead_below).table()}"
-            )
+            table = q.health(self.dead_below).table()
+            rank_zero_info(f"codebook health of `{path}` after {trainer.global_step} steps:\n{table}")
         if self.stop_message:
-            print(self.stop_message)
+            rank_zero_info(self.stop_message)
 
     # --------------------------------------------------------------- helpers
     @staticmethod
@@ -244,82 +294,50 @@ class CodebookMonitor(pl.Callback):
             out[f"codebook/{path}/energy_left_db"] = report.energy_left_db
         return out
 
-    def _collapse_reason(self, path: str, report: HealthReport, index: int, codebook: Any) -> str | None:
-        """Why stage ``index`` (0-based) looks collapsed, or ``None``; updates its perplexity peak."""
-        s = report.stages[index]
-        m = self._module_state(path, len(report.stages))
-        if int(codebook.step) == 0:
-            return None  # not trained yet: its statistics are still start values
-        reasons = []
-        if self.warn_below > 0 and s.usage < self.warn_below:
-            reasons.append(f"usage {s.usage:.1%} < warn_below {self.warn_below:.1%}")
-        if int(codebook.step) >= _settle_steps(codebook.ema_decay):
-            peak = m["peak"][index] = max(m["peak"][index], s.perplexity)
-            if self.perplexity_drop is not None and s.perplexity * self.perplexity_drop < peak:
-                reasons.append(f"perplexity fell from {peak:.1f} to {s.perplexity:.1f} (> {self.perplexity_drop:g}x)")
-        return "; ".join(reasons) or None
+    def _decide(self, path: str, report: HealthReport, index: int) -> tuple[bool, str]:
+        """Update stage ``index``'s perplexity peak, then decide whether it collapsed."""
+        codebook = self._quantizers[path].codebooks[index]
+        record = self._records(path, len(report.stages))[index]
+        stage = report.stages[index]
+        trained = int(codebook.step) > 0  # before its first update the statistics are start values
+        settled = trained and int(codebook.step) >= settle_steps(codebook.ema_decay)
+        record.peak = updated_peak(record.peak, stage.perplexity, settled)
+        return collapse_decision(
+            stage,
+            record.peak,
+            trained=trained,
+            settled=settled,
+            warn_below=self.warn_below,
+            perplexity_drop=self.perplexity_drop,
+        )
 
     def _check(self, trainer: pl.Trainer, reports: dict[str, HealthReport], step: int) -> None:
         cases = [(path, i) for path, report in reports.items() for i in range(len(report.stages))]
-        reasons = [self._collapse_reason(p, reports[p], i, self._quantizers[p].codebooks[i]) for p, i in cases]
-        flags = torch.tensor([float(r is not None) for r in reasons], device=trainer.strategy.root_device)
+        decisions = [self._decide(path, reports[path], i) for path, i in cases]
+        flags = torch.tensor([float(d) for d, _ in decisions], device=trainer.strategy.root_device)
         agreed = trainer.strategy.reduce(flags, reduce_op="sum")  # one collective: every rank decides alike
         stops = []
-        for (path, i), reason, flag in zip(cases, reasons, agreed.tolist(), strict=True):
+        for (path, i), (_, reason), flag in zip(cases, decisions, agreed.tolist(), strict=True):
             if flag <= 0:
                 continue
-            s, m = reports[path].stages[i], self._state["modules"][path]
-            m["collapses"][i] += 1
+            s, record = reports[path].stages[i], self.records[path][i]
+            record.collapses += 1
             text = (
                 f"codebook collapse in `{path}` stage {s.stage} at step {step}: "
                 f"{reason or 'reported by another rank'}; usage {s.usage:.1%} of {s.entries} entries, "
                 f"{s.dead} dead, perplexity {s.perplexity:.1f} (batch {s.batch_perplexity:.1f}), "
                 f"energy left {s.energy_left_db:.2f} dB, {s.reseeds} reseeds"
             )
-            if not m["warned"][i]:
-                m["warned"][i] = True
-                if trainer.is_global_zero:
-                    warnings.warn(text, CodebookCollapseWarning, stacklevel=2)
+            if not record.warned:
+                record.warned = True
+                rank_zero_warn(text, category=CodebookCollapseWarning)
             if self.on_collapse == "reseed":
                 codebook = self._quantizers[path].codebooks[i]
                 codebook.request_reseed(self.dead_below or codebook.reseed_below or 0.03)
-                m["forced_reseeds"][i] += 1
+                record.forced_reseeds += 1
             elif self.on_collapse == "stop":
                 stops.append(text)
         if stops:
             trainer.should_stop = True
-            self._state["stop_message"] = "CodebookMonitor stopped training: " + " | ".join(stops)
-            if trainer.is_global_zero:
-                warnings.warn(self._state["stop_message"], CodebookCollapseWarning, stacklevel=2)
-
-    def _write_plot(self, path: str, step: int) -> str:
-        """One PNG: per quantizer, sorted usage counts per stage and energy left per stage."""
-        from matplotlib.figure import Figure  # Agg canvas; no pyplot, no global backend change
-
-        rows = len(self._quantizers)
-        fig = Figure(figsize=(10, 3.2 * rows))
-        fig.subplots_adjust(left=0.08, right=0.98, bottom=0.16, top=0.9, wspace=0.25, hspace=0.45)
-        axes = fig.subplots(rows, 2, squeeze=False)
-        for (name, q), (ax_use, ax_left) in zip(self._quantizers.items(), axes, strict=True):
-            report = q.health(self.dead_below)
-            for s, codebook in zip(report.stages, q.codebooks, strict=True):
-                counts = codebook.ema_count.detach().float().cpu().sort(descending=True).values
-                ax_use.step(
-                    range(1, len(counts) + 1),
-                    counts.clamp_min(1e-12).numpy(),
-                    where="mid",
-                    label=f"stage {s.stage} ({s.usage:.0%} used)",
-                )
-            ax_use.set_yscale("log")
-            ax_use.set_xlabel("entry (sorted by use)")
-            ax_use.set_ylabel("moving-average count")
-            ax_use.set_title(f"{name}: code usage, step {step}")
-            ax_use.legend(fontsize="small")
-            left = [s.energy_left_db if math.isfinite(s.energy_left_db) else float("nan") for s in report.stages]
-            ax_left.bar([s.stage for s in report.stages], left)
-            ax_left.set_xlabel("stage")
-            ax_left.set_ylabel("energy left (dB)")
-            ax_left.set_title(f"{name}: energy left after each stage")
-        with atomic_path(path) as tmp:
-            fig.savefig(tmp, format="png", dpi=80)
-        return path
+            self.stop_message = "CodebookMonitor stopped training: " + " | ".join(stops)
+            rank_zero_warn(self.stop_message, category=CodebookCollapseWarning)

@@ -2,8 +2,12 @@
 
 from __future__ import annotations
 
+import contextlib
 import csv
+import logging
 import math
+import os
+import stat
 import subprocess
 import sys
 import warnings
@@ -20,7 +24,14 @@ pytest.importorskip("matplotlib")
 from pytorch_lightning.loggers import CSVLogger, TensorBoardLogger  # noqa: E402
 
 from rvqlayer import MultiStageQuantizer, RvqlayerError  # noqa: E402
-from rvqlayer.callbacks import CodebookCollapseWarning, CodebookMonitor  # noqa: E402
+from rvqlayer.callbacks import (  # noqa: E402
+    CodebookCollapseWarning,
+    CodebookMonitor,
+    StageRecord,
+    collapse_decision,
+    updated_peak,
+)
+from rvqlayer.health import StageHealth  # noqa: E402
 
 FIGURES = ("usage", "dead", "perplexity", "batch_perplexity", "energy_left_db", "reseeds")
 
@@ -100,7 +111,29 @@ def test_import_rvqlayer_leaves_lightning_out() -> None:
     assert "pytorch_lightning" in sys.modules  # the name checked above is the one rvqlayer.callbacks imports
 
 
-def test_logs_every_stage_to_csv_and_tensorboard_and_plots(tmp_path: Path, capsys) -> None:
+@contextlib.contextmanager
+def _rank_zero_messages():
+    """Collect what goes through Lightning's ``rank_zero_info`` (its logger), at INFO level."""
+    from pytorch_lightning.utilities.rank_zero import rank_zero_module
+
+    messages: list[str] = []
+
+    class Collect(logging.Handler):
+        def emit(self, record: logging.LogRecord) -> None:
+            messages.append(record.getMessage())
+
+    log, handler = rank_zero_module.log, Collect(logging.INFO)
+    level = log.level
+    log.setLevel(logging.INFO)
+    log.addHandler(handler)
+    try:
+        yield messages
+    finally:
+        log.removeHandler(handler)
+        log.setLevel(level)
+
+
+def test_logs_every_stage_to_csv_and_tensorboard_and_plots(tmp_path: Path) -> None:
     pytest.importorskip("tensorboard")
     from matplotlib.image import imread
     from tensorboard.backend.event_processing.event_accumulator import EventAccumulator
@@ -109,7 +142,10 @@ def test_logs_every_stage_to_csv_and_tensorboard_and_plots(tmp_path: Path, capsy
     csv_logger = CSVLogger(tmp_path, name="csv")
     tb_logger = TensorBoardLogger(tmp_path, name="tb")
     monitor = CodebookMonitor()  # every_n_steps=None: the trainer's log_every_n_steps
-    _fit(TinyCodec(), monitor, tmp_path, max_steps=16, val=True, logger=[csv_logger, tb_logger], log_every_n_steps=4)
+    with _rank_zero_messages() as messages:
+        _fit(
+            TinyCodec(), monitor, tmp_path, max_steps=16, val=True, logger=[csv_logger, tb_logger], log_every_n_steps=4
+        )
     wanted = {f"codebook/bottleneck/stage{k}/{f}" for k in (1, 2, 3) for f in FIGURES}
     wanted |= {"codebook/bottleneck/entropy_bits", "codebook/bottleneck/energy_left_db"}
 
@@ -137,7 +173,7 @@ def test_logs_every_stage_to_csv_and_tensorboard_and_plots(tmp_path: Path, capsy
     image = imread(plots[-1])
     assert image.ndim == 3 and image.shape[0] > 100 and image.shape[1] > 100 and float(image.std()) > 0
 
-    out = capsys.readouterr().out
+    out = "\n".join(messages)
     assert "codebook health of `bottleneck` after 16 steps" in out
     table = out.split("after 16 steps:\n", 1)[1]
     assert [line.split()[0] for line in table.splitlines()[1:4]] == ["1", "2", "3"]
@@ -298,3 +334,74 @@ def test_foreign_state_is_rejected(bad) -> None:
 def test_options_are_checked(option) -> None:
     with pytest.raises(RvqlayerError, match=f"`{next(iter(option))}`"):
         CodebookMonitor(**option)
+
+
+def test_plot_has_the_permissions_of_any_new_file(tmp_path: Path) -> None:
+    torch.manual_seed(0)
+    monitor = CodebookMonitor()
+    old = os.umask(0o027)
+    try:
+        _fit(TinyCodec(), monitor, tmp_path, max_steps=8, val=True, logger=CSVLogger(tmp_path, name="csv"))
+    finally:
+        os.umask(old)
+    plot = Path(monitor.last_plot)
+    assert plot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert stat.S_IMODE(plot.stat().st_mode) == 0o640  # 0o666 under umask 027, not mkstemp's 0o600
+    assert not list(plot.parent.glob(".*.tmp"))
+
+
+def _stage(usage: float, perplexity: float) -> StageHealth:
+    return StageHealth(
+        stage=1,
+        entries=16,
+        usage=usage,
+        dead=round(16 * (1 - usage)),
+        reseeds=0,
+        perplexity=perplexity,
+        batch_perplexity=perplexity,
+        energy_left=0.5,
+        energy_left_db=-3.0,
+        commitment=0.1,
+        drift=0.0,
+        entropy_bits=math.log2(perplexity),
+        bits=4.0,
+        steps=10,
+    )
+
+
+def test_collapse_decision_is_a_pure_function_of_figures_and_peak() -> None:
+    options = dict(warn_below=0.25, perplexity_drop=4.0)
+    assert collapse_decision(_stage(1.0, 14.0), 14.0, trained=True, settled=True, **options) == (False, "")
+    low, why = collapse_decision(_stage(0.1, 14.0), 14.0, trained=True, settled=True, **options)
+    assert low and why.startswith("usage 10.0% < warn_below 25.0%")
+    dropped, why = collapse_decision(_stage(1.0, 3.0), 14.0, trained=True, settled=True, **options)
+    assert dropped and "perplexity fell from 14.0 to 3.0" in why
+    assert collapse_decision(_stage(1.0, 3.0), 14.0, trained=True, settled=False, **options) == (False, "")
+    assert collapse_decision(_stage(0.0, 1.0), 14.0, trained=False, settled=False, **options) == (False, "")
+    off = dict(warn_below=0.0, perplexity_drop=None)
+    assert collapse_decision(_stage(0.0, 1.0), 14.0, trained=True, settled=True, **off) == (False, "")
+    assert updated_peak(5.0, 7.0, settled=True) == 7.0 and updated_peak(5.0, 7.0, settled=False) == 5.0
+    assert updated_peak(5.0, 3.0, settled=True) == 5.0
+
+
+def test_monitor_state_is_plain_attributes() -> None:
+    monitor = CodebookMonitor()
+    assert (monitor.checks, monitor.last_step, monitor.plots, monitor.stop_message, monitor.records) == (
+        0,
+        -1,
+        0,
+        None,
+        {},
+    )
+    monitor.load_state_dict(
+        {
+            "version": 1,
+            "checks": 3,
+            "last_step": 9,
+            "plots": 1,
+            "stop_message": None,
+            "modules": {"q": {"warned": [True], "peak": [7.5], "collapses": [2], "forced_reseeds": [0]}},
+        }
+    )
+    assert monitor.records == {"q": [StageRecord(warned=True, peak=7.5, collapses=2, forced_reseeds=0)]}
+    assert monitor.checks == 3 and monitor.last_step == 9

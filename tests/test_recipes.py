@@ -7,8 +7,11 @@ import io
 import json
 import math
 import os
+import shutil
+import signal
 import subprocess
 import sys
+import time
 import wave
 from pathlib import Path
 
@@ -19,7 +22,8 @@ import torch
 pytest.importorskip("pytorch_lightning")
 
 from recipes import cli  # noqa: E402
-from recipes._outputs import Measure, RateRow, RateTable, make_output_dir  # noqa: E402
+from recipes._out_dir import make_output_dir  # noqa: E402
+from recipes._table import Measure, RateRow, RateTable  # noqa: E402
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
@@ -93,32 +97,52 @@ def embeddings_run(tmp_path_factory):
 def test_tones_table_has_a_row_per_stage_and_improves(tones_run):
     out, rc, stdout = tones_run
     assert rc == 0
-    rows = _assert_table(out, 8, {"SNR": True})
-    # The log-spectral distance is not guaranteed to fall at every added stage of a briefly trained
-    # model (the README says so); over the whole range it must.
-    assert rows[-1]["LSD"] < rows[0]["LSD"]
+    rows = _assert_table(out, 8, {})
+    # Spread of each asserted figure over seeds 0-4 x 1 and 2 threads (--quick; DEVELOPERS.md has the rule):
+    # SNR gain of stage 2 / 3 / 4: mean 2.10 / 1.32 / 0.90 dB, sd 0.16 / 0.23 / 0.16 (>= 5.7 sd). Stages 5-8
+    # add 0.21-0.55 dB with sd 0.09-0.16 (2.2-3.5 sd), so they are not asserted one by one. All stages
+    # against one: +5.73 dB, sd 0.83; SNR with one stage: 3.68 dB, sd 0.32. The LSD is not asserted: after
+    # 120 steps it rose with more stages in 4 of 5 seeds (LSD8 - LSD1: mean +0.59 dB, sd 0.51).
+    snr = [r["SNR"] for r in rows]
+    assert snr[0] < snr[1] < snr[2] < snr[3], snr
+    assert snr[-1] > snr[0] > 0.0
+    assert all(math.isfinite(r["LSD"]) for r in rows)
     # 250 frames/s, 256 entries = 8 bits per stage: 2 kbps per stage.
     assert [r["rate"] for r in rows] == pytest.approx([2.0 * k for k in range(1, 9)])
-    assert rows[-1]["SNR"] > rows[0]["SNR"] > 0.0
     wav = out / "audio" / "original.wav"
     assert "rate-quality table" in stdout
     assert str(wav) in stdout or os.path.relpath(wav) in stdout  # the summary names the file either way
     assert (out / "rate_quality.txt").read_text().count("\n") == 9  # header + 8 rows
 
 
-def test_tones_writes_valid_wav_files_at_minus_one_dbfs(tones_run):
+def test_tones_writes_valid_wav_files_scaled_alike_at_most_minus_one_dbfs(tones_run):
+    """One factor for the clip and its decodings (a level error stays audible); the loudest peaks at -1 dBFS."""
+    from recipes import tones
+    from recipes._synth import SPLIT_HELD_OUT, render_batch
+
     out, rc, _ = tones_run
     assert rc == 0
     names = ["original", "decoded_1_stages", "decoded_4_stages", "decoded_8_stages"]
-    lengths = set()
+    pcm = {}
     for name in names:
         with wave.open(str(out / "audio" / f"{name}.wav"), "rb") as w:
             assert (w.getframerate(), w.getsampwidth(), w.getnchannels()) == (16000, 2, 1)
-            pcm = np.frombuffer(w.readframes(w.getnframes()), dtype="<i2")
-        lengths.add(len(pcm))
-        peak_dbfs = 20 * math.log10(np.abs(pcm.astype(np.float64)).max() / 32768)
-        assert -1.05 <= peak_dbfs <= -1.0 + 1e-3, (name, peak_dbfs)
-    assert lengths == {48000}  # 3 s held-out clips in --quick mode
+            pcm[name] = np.frombuffer(w.readframes(w.getnframes()), dtype="<i2").astype(np.float64)
+    assert {len(p) for p in pcm.values()} == {48000}  # 3 s held-out clips in --quick mode
+    peaks = {name: 20 * math.log10(np.abs(p).max() / 32768) for name, p in pcm.items()}
+    assert all(p <= -1.0 + 1e-3 for p in peaks.values()), peaks
+    assert -1.05 <= max(peaks.values()), peaks
+
+    state = torch.load(out / "checkpoints" / "last.ckpt", weights_only=True)
+    module = tones.ToneModule(state["recipe"])
+    module.load_state_dict(state["state_dict"])
+    codec = module.codec.eval()
+    clips = render_batch(0, SPLIT_HELD_OUT, 0, 2, 48000)
+    codes = codec.encode(torch.from_numpy(clips).unsqueeze(1))
+    signals = {"original": clips[0]}
+    signals |= {f"decoded_{k}_stages": codec.decode(codes[..., :k]).squeeze(1).numpy()[0] for k in (1, 4, 8)}
+    gains = [float(np.dot(pcm[n], signals[n]) / np.dot(signals[n], signals[n])) for n in names]  # least squares
+    assert max(gains) / min(gains) - 1 < 1e-3, gains
 
 
 def test_tones_plot_health_and_checkpoint(tones_run):
@@ -156,6 +180,8 @@ def test_tones_table_matches_the_checkpoint(tones_run):
 def test_digits_table_and_grid(digits_run):
     out, rc, stdout = digits_run
     assert rc == 0
+    # Spread over seeds 0-4 x 1 and 2 threads (--quick): MSE drop per added stage 0.0063 / 0.0018 / 0.0006,
+    # sd 0.0005 / 0.0002 / 0.0001 (>= 7.5 sd); 0.06 - MSE(1 stage) 0.022, sd 0.0012; 0.045 - MSE(4) 0.015, sd 0.0008.
     rows = _assert_table(out, 4, {"MSE": False})
     assert [r["rate"] for r in rows] == [6.0, 12.0, 18.0, 24.0]  # 64 entries = 6 bits per stage, one vector per image
     # Pixels in [0, 1]: the mean image of the whole set gives an MSE of 0.0733 (computed from load_digits);
@@ -173,7 +199,9 @@ def test_embeddings_codes_decode_through_the_saved_codebooks(embeddings_run):
 
     out, rc, _ = embeddings_run
     assert rc == 0
-    rows = _assert_table(out, 6, {"SNR": True, "energy left": False})
+    # Spread over seeds 0-4 x 1 and 2 threads (--quick): SNR gain per added stage 1.83-2.30 dB, sd <= 0.057;
+    # error share drop per stage 0.26-2.05 points, each >= 8.7 sd.
+    rows = _assert_table(out, 6, {"SNR": True, "error share": False})
     n, dim, comps = DEMO[True]
     x = demo_features(0, n, dim, comps)
     codes = np.load(out / "codes.npy", allow_pickle=False)
@@ -184,7 +212,7 @@ def test_embeddings_codes_decode_through_the_saved_codebooks(embeddings_run):
     err = np.sum((x_hat - x) ** 2)
     snr = 10 * math.log10(np.sum((x - x.mean(0)) ** 2) / err)
     assert snr == pytest.approx(rows[-1]["SNR"], abs=1e-3)
-    assert 100 * err / np.sum(x.astype(np.float64) ** 2) == pytest.approx(rows[-1]["energy left"], rel=1e-4)
+    assert 100 * err / np.sum(x.astype(np.float64) ** 2) == pytest.approx(rows[-1]["error share"], rel=1e-4)
     # Codes of the first k stages decode to the k-stage row.
     x1 = q.decode(torch.from_numpy(codes[:, :1])).double().numpy()
     assert 10 * math.log10(np.sum((x - x.mean(0)) ** 2) / np.sum((x1 - x) ** 2)) == pytest.approx(
@@ -222,7 +250,9 @@ def test_embeddings_from_a_sequence_file(tmp_path, suffix):
         ]
     )
     assert rc == 0, err
-    rows = _assert_table(out, 3, {"SNR": True, "energy left": False})
+    # Spread (this file, seeds 0-4 x 1 and 2 threads): SNR gain per stage 2.38 / 2.15 dB, sd 0.10 / 0.035;
+    # error share drop 23.8 / 12.8 points, sd 0.74 / 0.41.
+    rows = _assert_table(out, 3, {"SNR": True, "error share": False})
     assert [r["rate"] for r in rows] == pytest.approx([0.2, 0.4, 0.6])  # 50 vectors/s * 4 bits per stage
     codes = np.load(out / "codes.npy")
     assert codes.shape == (40, 5, 3)
@@ -232,7 +262,12 @@ def test_embeddings_with_learned_projections(tmp_path):
     out = tmp_path / "run"
     rc, _, err = _run(["embeddings", "--quick", "--code-dim", "8", "--steps", "30", "--out", str(out)])
     assert rc == 0, err
-    _assert_table(out, 6, {"SNR": True, "energy left": False})
+    rows = _assert_table(out, 6, {})
+    # Spread over seeds 0-4 x 1 and 2 threads: stages 4-6 add 0.006-0.022 dB each, sd 0.0015-0.0067 (3.2-3.9 sd;
+    # 60 steps no better), too close to the rule's 3 sd to assert stage by stage. All stages against one:
+    # SNR +0.23 dB, sd 0.046 (5.1 sd); error share -5.2 points, sd 0.90 (5.8 sd).
+    assert rows[-1]["SNR"] > rows[0]["SNR"] and rows[-1]["error share"] < rows[0]["error share"]
+    assert all(math.isfinite(r["SNR"]) and math.isfinite(r["error share"]) for r in rows)
 
 
 # ---------------------------------------------------------------- resume
@@ -304,6 +339,9 @@ BAD_INPUT = {
     "unknown recipe": ["poems"],
     "unknown option": ["digits", "--learning-rate", "1"],
     "resume with no checkpoint": ["digits", "--resume"],
+    "threads 0": ["digits", "--threads", "0"],
+    "devices 0": ["digits", "--devices", "0"],
+    "batch not split evenly among processes": ["digits", "--devices", "3"],
 }
 
 
@@ -436,13 +474,13 @@ def test_rate_table_reports_quality_that_gets_worse():
 def test_make_output_dir_removes_what_it_created_on_failure(tmp_path, monkeypatch):
     import tempfile
 
-    from rvqlayer import RvqlayerError
+    from recipes import RecipeInputError
 
     def refuse(*args, **kwargs):
         raise PermissionError(13, "Permission denied")
 
     monkeypatch.setattr(tempfile, "mkstemp", refuse)
-    with pytest.raises(RvqlayerError, match="writable folder"):
+    with pytest.raises(RecipeInputError, match="writable folder"):
         make_output_dir(tmp_path / "a" / "b" / "c")
     assert list(tmp_path.iterdir()) == []
 
@@ -453,7 +491,7 @@ class _Unpicklable:
 
 
 def test_checkpoint_writer_keeps_the_previous_file_when_a_save_fails(tmp_path):
-    from recipes._training import AtomicCheckpointIO
+    from recipes._checkpoint import AtomicCheckpointIO
 
     io_ = AtomicCheckpointIO()
     path = tmp_path / "last.ckpt"
@@ -522,3 +560,242 @@ def test_embeddings_table_shows_the_gaussian_bound(embeddings_run):
             theta_lo, theta_hi = (mid, theta_hi) if rate > row["bits_per_vector"] else (theta_lo, mid)
         bound = np.minimum(theta_hi, lam).sum()
         assert row["bound SNR"] == pytest.approx(10 * math.log10(lam.sum() / bound), abs=1e-6)
+
+
+# ------------------------------------------------- checkpoints and resume checks
+def test_checkpoints_hold_each_tensor_once(tones_run, digits_run, embeddings_run):
+    for out, rc, _ in (tones_run, digits_run, embeddings_run):
+        assert rc == 0
+        state = torch.load(out / "checkpoints" / "last.ckpt", weights_only=True)
+        seen: dict[int, str] = {}
+        for key, tensor in state["state_dict"].items():
+            if tensor.numel():
+                ptr = tensor.untyped_storage().data_ptr()
+                assert ptr not in seen, f"{out.parent.name}: `{key}` shares its storage with `{seen.get(ptr)}`"
+                seen[ptr] = key
+    # no projection is said once, as None, from the command line to the layer
+    state = torch.load(embeddings_run[0] / "checkpoints" / "last.ckpt", weights_only=True)
+    assert state["recipe"]["code_dim"] is None
+
+
+@pytest.fixture(scope="module")
+def small_run(tmp_path_factory):
+    """A 4-step embeddings run with learned projections (so with an optimizer state)."""
+    out = tmp_path_factory.mktemp("small") / "run"
+    rc, _, err = _run(["embeddings", "--quick", "--steps", "4", "--code-dim", "8", "--out", str(out)])
+    assert rc == 0, err
+    return out
+
+
+def _set(path: list, value):
+    def change(state):
+        target = state
+        for key in path[:-1]:
+            target = target[key]
+        target[path[-1]] = value
+
+    return change
+
+
+def _nan_at(key: str, index: tuple, value: float = float("nan")):
+    def change(state):
+        state["state_dict"][key][index] = value
+
+    return change
+
+
+def _first_moment(state) -> None:
+    moments = state["optimizer_states"][0]["state"][0]
+    moments["exp_avg"] = torch.zeros(3, 3)
+
+
+TAMPERED = {
+    "batch_size 10**9": (_set(["recipe", "batch_size"], 10**9), "`--batch-size` to be an int in [1, 65536]"),
+    "steps 0": (_set(["recipe", "steps"], 0), "`--steps`"),
+    "stages as text": (_set(["recipe", "stages"], "6"), "`--stages` to be an int"),
+    "entries a bool": (_set(["recipe", "entries"], True), "`--entries` to be an int"),
+    "quick not a bool": (_set(["recipe", "quick"], "yes"), "`--quick`"),
+    "code_dim above the data's dim": (_set(["recipe", "code_dim"], 999), "`--code-dim`"),
+    "frame_rate NaN": (_set(["recipe", "frame_rate"], float("nan")), "`--frame-rate`"),
+    "seed negative": (_set(["recipe", "seed"], -1), "`--seed`"),
+    "data shape odd": (_set(["recipe", "data_shape"], [3]), "`--data`"),
+    "another recipe": (_set(["recipe", "recipe"], "digits"), "'embeddings' recipe"),
+    "settings not a dict": (_set(["recipe"], [1, 2]), "recipe"),
+    "NaN codeword": (_nan_at("quantizer.codebooks.0.codewords", (0, 0)), "finite tensors"),
+    "Inf in a moving average": (_nan_at("quantizer.codebooks.1.ema_sum", (3, 1), float("inf")), "finite tensors"),
+    "codewords of another shape": (_set(["state_dict", "quantizer.codebooks.0.codewords"], torch.zeros(5, 8)), "shape"),
+    "a tensor missing": (
+        lambda s: s["state_dict"].pop("quantizer.codebooks.2.ema_count"),
+        "missing `quantizer.codebooks.2.ema_count`",
+    ),
+    "a tensor too many": (_set(["state_dict", "extra.weight"], torch.zeros(2)), "unexpected `extra.weight`"),
+    "optimizer moment of another shape": (_first_moment, "optimizer `exp_avg`"),
+    "random state damaged": (_set(["torch_rng"], torch.zeros(3, dtype=torch.uint8)), "random state"),
+    "negative step": (_set(["global_step"], -5), "step count"),
+    "monitor state foreign": (
+        lambda s: s["callbacks"].update({k: {"version": 9} for k in s["callbacks"]}),
+        "CodebookMonitor state",
+    ),
+}
+
+
+@pytest.mark.parametrize("case", list(TAMPERED))
+def test_resume_rechecks_a_tampered_checkpoint(small_run, tmp_path, case):
+    change, words = TAMPERED[case]
+    out = tmp_path / "run"
+    shutil.copytree(small_run, out)
+    ckpt = out / "checkpoints" / "last.ckpt"
+    state = torch.load(ckpt, weights_only=True)
+    change(state)
+    torch.save(state, ckpt)
+    before = _snapshot(tmp_path)
+    rc, stdout, stderr = _run(["embeddings", "--resume", "--steps", "6", "--out", str(out)])
+    assert rc == 2, (case, stdout[-500:], stderr[-500:])
+    lines = stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("rvqlayer-recipe: error: expected `"), stderr
+    assert words in lines[0], lines[0]
+    assert _snapshot(tmp_path) == before
+
+
+def test_untampered_copy_resumes(small_run, tmp_path):
+    """The control for the cases above: the same copy, unchanged, resumes."""
+    out = tmp_path / "run"
+    shutil.copytree(small_run, out)
+    rc, stdout, err = _run(["embeddings", "--resume", "--steps", "6", "--out", str(out)])
+    assert rc == 0 and "resuming from the checkpoint at step 4 (of 6)" in stdout, err
+
+
+# ------------------------------------------------------------ Ctrl-C and threads
+class _CtrlCAt(__import__("pytorch_lightning").Callback):
+    """Sends this process SIGINT (what Ctrl-C does) when training reaches ``step``."""
+
+    def __init__(self, step: int) -> None:
+        self.step = step
+
+    def on_train_batch_start(self, trainer, pl_module, batch, batch_idx):
+        if trainer.global_step == self.step:
+            signal.raise_signal(signal.SIGINT)
+
+
+def test_ctrl_c_saves_a_checkpoint_and_the_resumed_run_matches(tmp_path, monkeypatch):
+    from recipes import _training
+
+    split, whole = tmp_path / "split", tmp_path / "whole"
+    real = _training.monitor_callbacks
+    monkeypatch.setattr(_training, "monitor_callbacks", lambda: real() + [_CtrlCAt(37)])
+    rc, stdout, stderr = _run(["digits", "--quick", "--steps", "80", "--out", str(split)])
+    monkeypatch.setattr(_training, "monitor_callbacks", real)
+    assert rc == 130, stderr[-1000:]
+    said = [line for line in stderr.splitlines() if "--resume" in line]
+    state = torch.load(split / "checkpoints" / "last.ckpt", weights_only=True)
+    step = state["global_step"]
+    assert 37 < step < 80  # the step in progress finishes, then the checkpoint is written
+    assert said == [
+        f"rvqlayer-recipe: interrupted at step {step}; checkpoint written; continue with: "
+        f"rvqlayer-recipe digits --resume --out {split}"
+    ]
+    assert not (split / "rate_quality.json").exists() and "rate-quality table" not in stdout
+
+    assert _run(["digits", "--resume", "--out", str(split)])[0] == 0
+    assert _run(["digits", "--quick", "--steps", "80", "--out", str(whole)])[0] == 0
+    a = torch.load(split / "checkpoints" / "last.ckpt", weights_only=True)
+    b = torch.load(whole / "checkpoints" / "last.ckpt", weights_only=True)
+    assert a["global_step"] == b["global_step"] == 80
+    for name, tensor in b["state_dict"].items():
+        assert torch.equal(a["state_dict"][name], tensor), name
+
+
+def test_ctrl_c_to_the_process_exits_130_with_a_checkpoint(tmp_path):
+    out = tmp_path / "run"
+    env = dict(os.environ, PYTHONWARNINGS="ignore")
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "recipes.cli", "digits", "--quick", "--steps", "100000", "--out", str(out)],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env=env,
+        cwd=Path(__file__).resolve().parents[1],
+    )
+    ckpt = out / "checkpoints" / "last.ckpt"
+    deadline = time.monotonic() + 180
+    while not ckpt.exists() and proc.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.2)  # digits writes a checkpoint every 100 steps
+    proc.send_signal(signal.SIGINT)
+    stdout, stderr = proc.communicate(timeout=120)
+    assert proc.returncode == 130, stderr[-2000:]
+    step = torch.load(ckpt, weights_only=True)["global_step"]
+    assert 100 <= step < 100000
+    assert stderr.strip().splitlines()[-1].startswith(f"rvqlayer-recipe: interrupted at step {step}; ")
+    assert stderr.strip().splitlines()[-1].endswith(f"--resume --out {out}")
+    assert "it/s" not in stdout  # the progress bar is on stderr
+
+
+def test_stdout_holds_the_table_and_the_file_list(digits_run):
+    out, rc, stdout = digits_run
+    assert rc == 0
+    for noise in ("it/s", "Epoch", "codebook health of"):
+        assert noise not in stdout
+    assert "rate-quality table" in stdout and "outputs in" in stdout
+
+
+def test_threads_default_to_the_machine_and_one_when_quick(tmp_path):
+    import torch as torch_
+
+    parse = cli.build_parser().parse_args
+    out = ["--out", str(tmp_path / "run")]
+    assert cli._validate(parse(["digits", *out])).threads == (os.cpu_count() or 1)
+    assert cli._validate(parse(["digits", "--quick", *out])).threads == 1
+    assert cli._validate(parse(["digits", "--quick", "--threads", "3", *out])).threads == 3
+    before = torch_.get_num_threads()
+    assert _run(["embeddings", "--quick", "--steps", "2", "--threads", "2", *out])[0] == 0
+    assert torch_.get_num_threads() == before  # restored for whoever called main()
+
+
+# ------------------------------------------------------------------ interface
+def test_every_registered_recipe_provides_the_interface():
+    from recipes.registry import RECIPES, Recipe
+
+    rc, stdout, _ = _run(["--help"])
+    assert rc == 0
+    for spec in RECIPES.values():
+        assert isinstance(spec.load(), Recipe)
+        assert spec.summary in stdout and spec.describe() in stdout
+        assert set(spec.defaults) == {"stages", "entries", "code_dim", "steps", "batch_size"}
+
+
+def test_recipes_raise_their_own_error_not_the_library_helper():
+    for path in Path(cli.__file__).parent.glob("*.py"):
+        assert "rvqlayer._checks" not in path.read_text(), path.name
+
+
+def test_two_processes_train_and_rank_zero_alone_writes(tmp_path):
+    """Lightning DDP on CPU (gloo), two processes on one machine: one table, one set of files."""
+    out = tmp_path / "run"
+    env = dict(os.environ, PYTHONWARNINGS="ignore")
+    done = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "recipes.cli",
+            "digits",
+            "--quick",
+            "--steps",
+            "20",
+            "--devices",
+            "2",
+            "--out",
+            str(out),
+        ],
+        capture_output=True,
+        text=True,
+        env=env,
+        cwd=Path(__file__).resolve().parents[1],
+        timeout=600,
+    )
+    assert done.returncode == 0, done.stderr[-3000:]
+    assert done.stdout.count("rate-quality table (digits") == 1 and done.stdout.count("digits: 1497") == 1
+    state = torch.load(out / "checkpoints" / "last.ckpt", weights_only=True)
+    assert state["global_step"] == 20 and state["recipe"]["devices"] == 2
+    _, rows = _rows(out)
+    assert [r["stages"] for r in rows] == [1, 2, 3, 4] and all(math.isfinite(r["MSE"]) for r in rows)
+    assert not [p for p in out.rglob("*.tmp")]

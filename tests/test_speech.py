@@ -104,7 +104,7 @@ def test_uniform_quantizer_of_a_gaussian_meets_the_published_values():
 
 
 def test_table_without_pesq_shows_a_dash_and_says_why():
-    from recipes._outputs import RateRow
+    from recipes._table import RateRow
     from recipes.speech import ReferenceRow, SpeechTable
 
     q = {"PESQ": float("nan"), "STOI": 0.9, "SI-SDR": 5.0, "LSD": 3.0, "mel L1": 0.5}

@@ -19,7 +19,7 @@ from torch import nn
 
 from rvqlayer import MultiStageQuantizer
 
-from . import _outputs, _plots, _training
+from . import _outputs, _plots, _streams, _training
 from ._checkpoint import CHECKPOINT
 from ._table import Measure, RateTable, rate_table
 from .registry import RECIPES, Prepared, Settings
@@ -133,8 +133,9 @@ def run(
         recon[k] = model.decode(codes[:, :k]).numpy()
         return {"MSE": float(np.mean((recon[k] - test) ** 2))}
 
-    table = rate_table(model.quantizer, measure, MEASURES, "bits/image", lambda bits: bits)
+    table = rate_table(model.quantizer, measure, MEASURES, "bits/image", lambda bits: bits, codes=codes)
     files = _outputs.write_table(out, table, {"recipe": NAME, "held_out_images": len(test), "pixel_scale": "0..1"})
+    files["held-out codes (stream)"] = _streams.write_codes(out, model.quantizer, codes, None)
     pick = _examples(test_labels)
     stages = config["stages"]
     rows = [("original", test[pick])]

@@ -32,7 +32,7 @@ from rvqlayer.export import save_codebooks
 from rvqlayer.files import atomic_write
 from rvqlayer.theory import covariance_eigenvalues, water_filling_distortion
 
-from . import _outputs, _plots, _training
+from . import _outputs, _plots, _streams, _training
 from ._checkpoint import CHECKPOINT
 from ._errors import input_error
 from ._table import Measure, RateTable, rate_table
@@ -199,11 +199,12 @@ def run(
         unit, rate = "kbps", (lambda bits: config["frame_rate"] * bits / 1000.0)
     else:
         unit, rate = "bits/item", (lambda bits: bits * per_item)
-    table = rate_table(q, measure, MEASURES, unit, rate)
+    table = rate_table(q, measure, MEASURES, unit, rate, codes=codes, frame_rate=config["frame_rate"])
     files = _outputs.write_table(out, table, {"recipe": NAME, "data": prepared.source, "shape": list(x.shape)})
     with atomic_write(out / "codes.npy") as f:
         np.save(f, codes.numpy())
     files["codes"] = out / "codes.npy"
+    files["codes (stream)"] = _streams.write_codes(out, q, codes, config["frame_rate"])
     files["codebooks"] = save_codebooks(q, out / "codebooks.safetensors")
     files["quality vs bits"] = _plots.rate_quality_png(out / "quality_vs_bits.png", table, "embeddings")
     files.update(_outputs.write_health(out, q))

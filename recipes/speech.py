@@ -35,7 +35,7 @@ from torch import nn
 from rvqlayer import MultiStageQuantizer
 from rvqlayer.files import atomic_path
 
-from . import _outputs, _plots, _speech_data, _speech_metrics, _training
+from . import _outputs, _plots, _speech_data, _speech_metrics, _streams, _training
 from ._audio import stft_loss, write_clip_set
 from ._checkpoint import CHECKPOINT
 from ._speech_scalar import fit_scalar_quantizer
@@ -176,39 +176,37 @@ class ReferenceRow:
 
 
 class SpeechTable(RateTable):
-    """The rate-quality table with an entropy-coded kbps column and reference rows below the stage rows."""
+    """The rate-quality table (with the measured stream columns) and reference rows below the stage rows."""
 
-    def __init__(
-        self, rows: list[RateRow], coded: list[float | None], references: list[ReferenceRow], note: str | None
-    ) -> None:
+    def __init__(self, rows: list[RateRow], references: list[ReferenceRow], note: str | None) -> None:
         super().__init__("kbps", list(MEASURES), rows)
-        self.coded = coded
         self.references = references
         self.note = note
 
     def format(self) -> str:
-        head = f"{'stages':>13}  {'bits/frame':>10}  {'kbps':>6}  {'kbps coded':>10}"
+        streams = self.stream_labels()
+        head = f"{'stages':>13}  {'bits/frame':>10}  {'kbps':>6}" + "".join(f"  {s:>12}" for s in streams)
         head += "".join(f"  {m.label:>9}" for m in self.measures)
 
         def cells(values: dict[str, float]) -> str:
             return "".join(f"  {_cell(values[m.name], m.name):>9}" for m in self.measures)
 
         lines = [head]
-        for r, c in zip(self.rows, self.coded):
-            coded = "-" if c is None else f"{c:.3f}"
-            lines.append(f"{r.stages:>13}  {r.bits_per_vector:>10.0f}  {r.rate:>6.2f}  {coded:>10}" + cells(r.quality))
+        for r in self.rows:
+            values = (r.stream.fixed, r.stream.coded, r.stream.entropy) if streams else ()  # type: ignore[union-attr]
+            costs = "".join(f"  {v:>12.3f}" for v in values)
+            lines.append(f"{r.stages:>13}  {r.bits_per_vector:>10.0f}  {r.rate:>6.2f}" + costs + cells(r.quality))
         for ref in self.references:
             bits = "-" if ref.bits_per_vector is None else f"{ref.bits_per_vector:.0f}"
             rate = "-" if ref.rate is None else f"{ref.rate:.2f}"
-            lines.append(f"{ref.label:>13}  {bits:>10}  {rate:>6}  {'-':>10}" + cells(ref.quality))
+            dashes = "".join(f"  {'-':>12}" for _ in streams)
+            lines.append(f"{ref.label:>13}  {bits:>10}  {rate:>6}" + dashes + cells(ref.quality))
         if self.note:
             lines.append(f"note: {self.note}")
         return "\n".join(lines)
 
     def as_dict(self) -> dict[str, Any]:
         out = super().as_dict()
-        for row, c in zip(out["rows"], self.coded):
-            row["rate_entropy_coded"] = c
         out["references"] = [
             {"label": r.label, "bits_per_vector": r.bits_per_vector, "rate": r.rate, **r.quality}
             for r in self.references
@@ -221,23 +219,6 @@ def _cell(value: float, name: str) -> str:
     if not math.isfinite(value):
         return "-"
     return f"{value:.2f}" if name in ("SI-SDR", "LSD") else f"{value:.3f}"
-
-
-def entropy_coded_kbps(quantizer: MultiStageQuantizer, codes: list[torch.Tensor], seconds: float) -> float | None:
-    """kbps of the held-out codes (a list of ``[1, frames, k]``) written as one entropy-coded stream, or None.
-
-    The hook for ``rvqlayer.stream`` (range coding with the quantizer's usage
-    tables): the size of the whole stream, headers included, over the clips'
-    duration. Without that module the column stays empty ("-").
-    """
-    try:
-        from rvqlayer import stream  # type: ignore[attr-defined]
-    except ImportError:
-        return None
-    tables = stream.UsageTables.from_quantizer(quantizer)
-    frames = torch.cat([c[0] for c in codes])  # [all frames, k]
-    blob = stream.write_stream(frames, entries=quantizer.entries, tables=tables, frame_rate=FRAME_RATE)
-    return 8 * len(blob) / seconds / 1000.0
 
 
 # ---------------------------------------------------------------- training
@@ -305,11 +286,16 @@ def run(
         recon[k] = [decode(codec.quantizer.decode(c[..., :k]), x) for c, x in zip(codes, refs)]
         return _speech_metrics.speech_figures(refs, recon[k])
 
-    stage_table = rate_table(codec.quantizer, measure, MEASURES, "kbps", lambda b: FRAME_RATE * b / 1000.0)
-    coded = [
-        entropy_coded_kbps(codec.quantizer, [c[..., : r.stages] for c in codes], total_seconds)
-        for r in stage_table.rows
-    ]
+    frames = torch.cat([c[0] for c in codes])  # [all frames, stages], clip after clip
+    stage_table = rate_table(
+        codec.quantizer,
+        measure,
+        MEASURES,
+        "kbps",
+        lambda b: FRAME_RATE * b / 1000.0,
+        codes=frames,
+        frame_rate=FRAME_RATE,
+    )
     bits = int(codec.quantizer.bits_per_vector(stages=codec.quantizer.stages))
     bypass = [decode(z, x) for z, x in zip(latents, refs)]
     sq = _fit_scalar(codec, data.train, seed, bits)
@@ -318,7 +304,7 @@ def run(
         ReferenceRow("no quantizer", None, None, _speech_metrics.speech_figures(refs, bypass)),
         ReferenceRow("scalar", float(bits), FRAME_RATE * bits / 1000.0, _speech_metrics.speech_figures(refs, scalar)),
     ]
-    table = SpeechTable(stage_table.rows, coded, references, _speech_metrics.PESQ_MISSING)
+    table = SpeechTable(stage_table.rows, references, _speech_metrics.PESQ_MISSING)
 
     files = _outputs.write_table(
         out,
@@ -332,6 +318,7 @@ def run(
             "scalar_bits_per_dimension": sq.bits.tolist(),
         },
     )
+    files["held-out codes (stream)"] = _streams.write_codes(out, codec.quantizer, frames, FRAME_RATE)
     stages = config["stages"]
     wanted = sorted({1, max(1, stages // 2), stages})
     files.update(write_clip_set(out / "audio", refs[0], {k: recon[k][0] for k in wanted}, RATE))

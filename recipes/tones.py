@@ -24,7 +24,7 @@ from torch import nn
 
 from rvqlayer import MultiStageQuantizer
 
-from . import _outputs, _plots, _training
+from . import _outputs, _plots, _streams, _training
 from ._audio import log_spectral_distance_db, snr_db, stft_loss, write_clip_set
 from ._checkpoint import CHECKPOINT
 from ._synth import RATE, SPLIT_HELD_OUT, SPLIT_TRAIN, render_batch
@@ -165,12 +165,21 @@ def run(
         recon[k] = y
         return {"SNR": snr_db(held_out, y), "LSD": log_spectral_distance_db(held_out, y)}
 
-    table = rate_table(codec.quantizer, measure, MEASURES, "kbps", lambda bits: FRAME_RATE * bits / 1000.0)
+    table = rate_table(
+        codec.quantizer,
+        measure,
+        MEASURES,
+        "kbps",
+        lambda bits: FRAME_RATE * bits / 1000.0,
+        codes=codes,
+        frame_rate=FRAME_RATE,
+    )
     files = _outputs.write_table(
         out,
         table,
         {"recipe": NAME, "frame_rate": FRAME_RATE, "held_out_clips": n_clips, "clip_seconds": samples / RATE},
     )
+    files["held-out codes (stream)"] = _streams.write_codes(out, codec.quantizer, codes, FRAME_RATE)
     stages = config["stages"]
     decoded = {k: recon[k][0] for k in sorted({1, max(1, stages // 2), stages})}
     files.update(write_clip_set(out / "audio", held_out[0], decoded, RATE))

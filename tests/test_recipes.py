@@ -59,6 +59,25 @@ def _assert_table(out: Path, stages: int, better: dict[str, bool]) -> list[dict]
     return rows
 
 
+STREAM_KEYS = ("rate_fixed_stream", "rate_entropy_coded", "rate_entropy_estimate")
+
+
+def _assert_stream(out: Path, quantizer, codes: torch.Tensor, rows: list[dict], rate_of_bytes) -> bytes:
+    """``codes.rvqs`` reads back with the quantizer's own usage tables to exactly ``codes`` ``[..., stages]``
+    (rows in order); the stream columns are positive and the all-stages coded rate is the file's size."""
+    from rvqlayer import stream
+
+    blob = (out / "codes.rvqs").read_bytes()
+    back = stream.read_stream(blob, tables=stream.UsageTables.from_quantizer(quantizer))
+    assert back.dtype == np.int64 and np.array_equal(back, codes.reshape(-1, codes.shape[-1]).numpy())
+    for row in rows:
+        assert all(math.isfinite(row[key]) and row[key] > 0 for key in STREAM_KEYS), row
+    assert rows[-1]["rate_entropy_coded"] == pytest.approx(rate_of_bytes(len(blob)), rel=1e-12)
+    header = (out / "rate_quality.txt").read_text().splitlines()[0]
+    assert "fixed" in header and "coded" in header and "entropy" in header
+    return blob
+
+
 def _assert_png(path: Path) -> tuple[int, ...]:
     import matplotlib.image
 
@@ -175,6 +194,12 @@ def test_tones_table_matches_the_checkpoint(tones_run):
     for k in (1, 8):
         y = codec.decode(codes[..., :k]).squeeze(1).numpy()
         assert snr_db(clips, y) == pytest.approx(rows[k - 1]["SNR"], abs=1e-4)
+    seconds = 2 * 3.0  # two 3 s clips
+    _assert_stream(out, codec.quantizer, codes, rows, lambda n: 8 * n / seconds / 1000)
+    # A fixed-length stream (README, "The stream format"): 44-byte header, one packet a second (250 frames,
+    # 11 bytes of packet header, 8 bits per code), an 11-byte end packet.
+    for k, row in enumerate(rows, start=1):
+        assert row["rate_fixed_stream"] == pytest.approx(8 * (44 + 6 * (11 + 250 * k) + 11) / seconds / 1000)
 
 
 def test_digits_table_and_grid(digits_run):
@@ -191,6 +216,19 @@ def test_digits_table_and_grid(digits_run):
     assert w > h  # ten digits across, four rows (original, 1, 2, all stages)
     _assert_png(out / "quality_vs_bits.png")
     assert "reconstructions" in stdout
+
+    from recipes import digits
+
+    state = torch.load(out / "checkpoints" / "last.ckpt", weights_only=True)
+    module = digits.DigitModule(state["recipe"])
+    module.load_state_dict(state["state_dict"])
+    test = digits.prepare(state["recipe"]).data[2]
+    codes = module.model.eval().encode(torch.from_numpy(test))
+    _assert_stream(out, module.model.quantizer, codes, rows, lambda n: 8 * n / len(test))
+    # No frame rate: one packet holds all 300 images (README, "The stream format": 44-byte header,
+    # 11-byte packet header, 6 bits per code packed, 11-byte end packet).
+    for k, row in enumerate(rows, start=1):
+        assert row["rate_fixed_stream"] == pytest.approx(8 * (44 + 11 + math.ceil(300 * 6 * k / 8) + 11) / 300)
 
 
 def test_embeddings_codes_decode_through_the_saved_codebooks(embeddings_run):
@@ -218,6 +256,7 @@ def test_embeddings_codes_decode_through_the_saved_codebooks(embeddings_run):
     assert 10 * math.log10(np.sum((x - x.mean(0)) ** 2) / np.sum((x1 - x) ** 2)) == pytest.approx(
         rows[0]["SNR"], abs=1e-3
     )
+    _assert_stream(out, q, torch.from_numpy(codes), rows, lambda n: 8 * n / len(x))
 
 
 @pytest.mark.parametrize("suffix", [".npy", ".pt"])
@@ -256,6 +295,10 @@ def test_embeddings_from_a_sequence_file(tmp_path, suffix):
     assert [r["rate"] for r in rows] == pytest.approx([0.2, 0.4, 0.6])  # 50 vectors/s * 4 bits per stage
     codes = np.load(out / "codes.npy")
     assert codes.shape == (40, 5, 3)
+    from rvqlayer.export import load_codebooks
+
+    q = load_codebooks(out / "codebooks.safetensors")
+    _assert_stream(out, q, torch.from_numpy(codes), rows, lambda n: 8 * n / (200 / 50) / 1000)  # 200 vectors
 
 
 def test_embeddings_with_learned_projections(tmp_path):

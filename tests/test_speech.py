@@ -108,9 +108,9 @@ def test_table_without_pesq_shows_a_dash_and_says_why():
     from recipes.speech import ReferenceRow, SpeechTable
 
     q = {"PESQ": float("nan"), "STOI": 0.9, "SI-SDR": 5.0, "LSD": 3.0, "mel L1": 0.5}
-    table = SpeechTable([RateRow(1, 8.0, 0.4, q)], [None], [ReferenceRow("no quantizer", None, None, q)], "why")
+    table = SpeechTable([RateRow(1, 8.0, 0.4, q)], [ReferenceRow("no quantizer", None, None, q)], "why")
     text = table.format()
-    assert text.splitlines()[1].split()[3:5] == ["-", "-"]  # kbps coded, PESQ
+    assert text.splitlines()[1].split()[3] == "-"  # PESQ (no stream columns without streams)
     assert text.splitlines()[-1] == "note: why"
     assert json.loads(json.dumps(table.as_dict()))["references"][0]["label"] == "no quantizer"
 
@@ -131,7 +131,23 @@ def test_quick_run_writes_the_table_with_reference_rows(quick_run):
     assert [r["stages"] for r in rows] == list(range(1, 9))
     # 50 frames/s, 256 entries (8 bits) per stage: 0.4 kbps a stage.
     assert [r["rate"] for r in rows] == pytest.approx([0.4 * k for k in range(1, 9)])
-    assert all(r["rate_entropy_coded"] > 0 for r in rows)  # rvqlayer.stream
+    for row in rows:  # measured on streams of the held-out codes (rvqlayer.stream)
+        for key in ("rate_fixed_stream", "rate_entropy_coded", "rate_entropy_estimate"):
+            assert math.isfinite(row[key]) and row[key] > 0, (key, row)
+    # The stream file: every held-out frame (3 clips of at most 3 s, each padded to whole 20 ms frames) with
+    # all 8 stages, read back with the quantizer's own usage tables from the checkpoint.
+    from recipes import speech
+    from rvqlayer import stream
+
+    state = torch.load(out / "checkpoints" / "last.ckpt", weights_only=True)
+    module = speech.SpeechModule(state["recipe"])
+    module.load_state_dict(state["state_dict"])
+    blob = (out / "codes.rvqs").read_bytes()
+    codes = stream.read_stream(blob, tables=stream.UsageTables.from_quantizer(module.codec.quantizer))
+    assert codes.shape[1] == 8 and 3 <= codes.shape[0] <= 3 * 150
+    assert codes.min() >= 0 and codes.max() < 256
+    assert rows[-1]["rate_entropy_coded"] == pytest.approx(8 * len(blob) / (codes.shape[0] / 50) / 1000)
+    assert "kbps coded" in (out / "rate_quality.txt").read_text().splitlines()[0]
     refs = {r["label"]: r for r in data["references"]}
     assert set(refs) == {"no quantizer", "scalar"}
     assert refs["scalar"]["bits_per_vector"] == rows[-1]["bits_per_vector"] == 64

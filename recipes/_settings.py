@@ -19,6 +19,10 @@ from .registry import RecipeSpec
 
 # Settings that fix the model's shape or its data stream: a resumed run must keep them.
 FIXED_ON_RESUME = ("stages", "entries", "code_dim", "seed", "data")
+# Settings only some recipes take (named in their RecipeSpec.options); None for every other recipe.
+RECIPE_SPECIFIC = ("data", "frame_rate", "refine")
+# Defaults of recipe-specific settings for the recipes that take them (None: left out).
+_SPECIFIC_DEFAULTS = {"data": None, "frame_rate": None, "refine": 0}
 
 
 def _int_in(low: int, high: int) -> Callable[[str, Any], int]:
@@ -84,6 +88,7 @@ SETTINGS: dict[str, Setting] = {
         Setting("seed", _int_in(0, 2**32 - 1), int),
         Setting("frame_rate", _positive_float, float, optional=True),
         Setting("data", _path_text, str, optional=True),
+        Setting("refine", _int_in(0, 20), int, optional=True),
     )
 }
 
@@ -107,7 +112,7 @@ def check_stored(stored: Any, spec: RecipeSpec, where: str) -> dict[str, Any]:
             checked[key] = setting.validate(stored[key])
         except ValueError as err:
             raise type(err)(f"{err} (read from {where})") from None
-        if checked[key] is not None and key in ("data", "frame_rate") and key not in spec.options:
+        if checked[key] is not None and key in RECIPE_SPECIFIC and key not in spec.options:
             raise input_error(
                 setting.flag, f"absent for the {spec.name!r} recipe", f"{stored[key]!r} (read from {where})"
             )
@@ -137,7 +142,8 @@ def combine(given: dict[str, Any], stored: dict[str, Any] | None, spec: RecipeSp
                 )
         quick = bool(stored.get("quick")) or quick
     defaults = dict(spec.defaults) | (dict(spec.quick) if quick else {})
-    settings: dict[str, Any] = {"recipe": spec.name, "quick": quick, "seed": 0, "data": None, "frame_rate": None}
+    settings: dict[str, Any] = {"recipe": spec.name, "quick": quick, "seed": 0}
+    settings |= {k: _SPECIFIC_DEFAULTS[k] if k in spec.options else None for k in RECIPE_SPECIFIC}
     settings |= defaults
     if stored is not None:
         settings |= {k: v for k, v in stored.items() if k in SETTINGS and v is not None}

@@ -18,7 +18,7 @@ from pathlib import Path
 from typing import Any, NoReturn
 
 from ._errors import RecipeInputError, input_error
-from ._settings import SETTINGS, Setting, check_stored, combine
+from ._settings import RECIPE_SPECIFIC, SETTINGS, Setting, check_stored, combine
 from .registry import RECIPES, Prepared, Recipe, RecipeSpec
 
 PROG = "rvqlayer-recipe"
@@ -38,6 +38,7 @@ _HELP = {
         "embeddings: feature file .npy or .pt, [N, dim] or [N, T, dim]; speech: a folder of WAV/FLAC files",
     ),
     "frame_rate": ("HZ", "vectors per second, to report kbps"),
+    "refine": ("ROUNDS", "rounds of joint codebook refinement after training, 0-20 (default 0)"),
 }
 
 
@@ -94,7 +95,7 @@ def build_parser() -> argparse.ArgumentParser:
     for key, setting in SETTINGS.items():
         metavar, text = _HELP[key]
         takers = [s.name for s in RECIPES.values() if key in s.options]
-        if key in ("data", "frame_rate"):
+        if key in RECIPE_SPECIFIC:
             text = f"{' | '.join(takers)} only: {text}"
         kind = Path if key == "data" else _argument_type(setting)
         parser.add_argument(setting.flag, dest=key, metavar=metavar, type=kind, help=text)
@@ -201,7 +202,7 @@ def main(argv: list[str] | None = None) -> int:
 def _validate(args: argparse.Namespace) -> _Run:
     """Check everything given on the command line (and the checkpoint, with --resume); writes nothing."""
     spec = RECIPES[args.name]
-    for key in ("data", "frame_rate"):
+    for key in RECIPE_SPECIFIC:
         if getattr(args, key) is not None and key not in spec.options:
             takers = " or ".join(repr(s.name) for s in RECIPES.values() if key in s.options)
             flag = SETTINGS[key].flag

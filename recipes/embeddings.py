@@ -179,6 +179,9 @@ def run(
 
     q = module.quantizer.eval()
     xt = torch.from_numpy(x)
+    if config.get("refine"):
+        errors = q.refine(xt, rounds=config["refine"])
+        print(f"embeddings: refined the codebooks ({config['refine']} rounds): MSE {errors[0]:.6g} -> {errors[-1]:.6g}")
     codes = q.encode(xt)
     centred = float(np.sum((x - x.reshape(-1, dim).mean(0)) ** 2, dtype=np.float64))
     energy = float(np.sum(x.astype(np.float64) ** 2))
@@ -200,7 +203,13 @@ def run(
     else:
         unit, rate = "bits/item", (lambda bits: bits * per_item)
     table = rate_table(q, measure, MEASURES, unit, rate, codes=codes, frame_rate=config["frame_rate"])
-    files = _outputs.write_table(out, table, {"recipe": NAME, "data": prepared.source, "shape": list(x.shape)})
+    extra = {
+        "recipe": NAME,
+        "data": prepared.source,
+        "shape": list(x.shape),
+        "refine_rounds": config.get("refine") or 0,
+    }
+    files = _outputs.write_table(out, table, extra)
     with atomic_write(out / "codes.npy") as f:
         np.save(f, codes.numpy())
     files["codes"] = out / "codes.npy"

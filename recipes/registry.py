@@ -8,8 +8,9 @@ everything else from here.
 A run's *settings* are a plain dict (so that checkpoints hold plain values):
 ``recipe``, ``quick``, ``seed``, ``stages``, ``entries``, ``code_dim``
 (``None``: the quantizer's input size, no projection), ``steps``,
-``batch_size``, ``data``, ``frame_rate`` and, when the recipe reads a data
-file, ``data_shape``.
+``batch_size``, ``data``, ``frame_rate``, ``refine`` (rounds of codebook
+refinement; 0 for the recipes that take it, else ``None``) and, when the
+recipe reads a data file, ``data_shape``.
 """
 
 from __future__ import annotations
@@ -78,7 +79,7 @@ class RecipeSpec:
     ``defaults`` holds stages, entries, code_dim (``None``: input size),
     steps and batch_size; ``quick`` the values ``--quick`` replaces.
     ``options`` names the recipe-specific command-line settings it accepts
-    (``"data"``, ``"frame_rate"``); any other recipe rejects them.
+    (``"data"``, ``"frame_rate"``, ``"refine"``); any other recipe rejects them.
     """
 
     name: str
@@ -143,7 +144,7 @@ RECIPES: Mapping[str, RecipeSpec] = _spec(
         "a quantizer fitted directly to pre-computed feature vectors (.npy or .pt)",
         {"stages": 6, "entries": 128, "code_dim": None, "steps": 240, "batch_size": 1024},
         {"steps": 60},
-        frozenset({"data", "frame_rate"}),
+        frozenset({"data", "frame_rate", "refine"}),
     ),
 )
 """Every recipe the command knows, in the order ``--help`` lists them."""

@@ -14,7 +14,9 @@ gradient on the reconstruction error. The codes of every input vector are
 written back as ``codes.npy`` (int64, the input's shape with ``stages`` in
 place of ``dim``) and the quantizer as ``codebooks.safetensors``
 (:func:`rvqlayer.export.load_codebooks` reads it; ``decode`` of the codes
-gives the reconstructions).
+gives the reconstructions). ``--refine ROUNDS`` re-fits the codebooks
+jointly (:meth:`~rvqlayer.MultiStageQuantizer.refine`) after training and
+before encoding; the checkpoint keeps the layer before refinement.
 """
 
 from __future__ import annotations

@@ -7,6 +7,7 @@ from pathlib import Path
 
 import numpy as np
 import torch
+from torch import nn
 
 from rvqlayer.files import atomic_path
 
@@ -137,3 +138,19 @@ def write_clip_set(folder: Path, original: np.ndarray, decoded: dict[int, np.nda
             folder / f"decoded_{k}_stages.wav", clip, rate, gain=gain
         )
     return files
+
+
+class ResidualUnit(nn.Module):
+    """A dilated residual convolution unit ``[batch, channels, time] -> same``: ELU, conv 3, ELU, conv 1, plus x."""
+
+    def __init__(self, channels: int, dilation: int) -> None:
+        super().__init__()
+        self.body = nn.Sequential(
+            nn.ELU(),
+            nn.Conv1d(channels, channels, 3, padding=dilation, dilation=dilation),
+            nn.ELU(),
+            nn.Conv1d(channels, channels, 1),
+        )
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return x + self.body(x)

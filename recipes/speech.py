@@ -36,7 +36,7 @@ from rvqlayer import MultiStageQuantizer
 from rvqlayer.files import atomic_path
 
 from . import _outputs, _plots, _speech_data, _speech_metrics, _streams, _training
-from ._audio import stft_loss, write_clip_set
+from ._audio import ResidualUnit, stft_loss, write_clip_set
 from ._checkpoint import CHECKPOINT
 from ._speech_scalar import fit_scalar_quantizer
 from ._table import Measure, RateRow, RateTable, rate_table
@@ -78,20 +78,6 @@ def prepare(settings: Settings) -> Prepared:
     return Prepared(audio, LATENT, shape=shape, source=audio.source)
 
 
-class _ResidualUnit(nn.Module):
-    def __init__(self, channels: int, dilation: int) -> None:
-        super().__init__()
-        self.body = nn.Sequential(
-            nn.ELU(),
-            nn.Conv1d(channels, channels, 3, padding=dilation, dilation=dilation),
-            nn.ELU(),
-            nn.Conv1d(channels, channels, 1),
-        )
-
-    def forward(self, x: torch.Tensor) -> torch.Tensor:
-        return x + self.body(x)
-
-
 class SpeechCodec(nn.Module):
     """Waveform ``[batch, 1, samples]`` -> frames ``[batch, 32, samples / 320]`` -> waveform.
 
@@ -104,23 +90,23 @@ class SpeechCodec(nn.Module):
         down = HOP // FIRST_HOP
         self.encoder = nn.Sequential(
             nn.Conv1d(1, a, 2 * FIRST_HOP, stride=FIRST_HOP, padding=FIRST_HOP // 2),
-            _ResidualUnit(a, 1),
-            _ResidualUnit(a, 3),
+            ResidualUnit(a, 1),
+            ResidualUnit(a, 3),
             nn.ELU(),
             nn.Conv1d(a, b, 3 * down, stride=down, padding=down),
-            _ResidualUnit(b, 1),
-            _ResidualUnit(b, 3),
+            ResidualUnit(b, 1),
+            ResidualUnit(b, 3),
             nn.ELU(),
             nn.Conv1d(b, LATENT, 3, padding=1),
         )
         self.decoder = nn.Sequential(
             nn.Conv1d(LATENT, b, 3, padding=1),
-            _ResidualUnit(b, 1),
-            _ResidualUnit(b, 3),
+            ResidualUnit(b, 1),
+            ResidualUnit(b, 3),
             nn.ELU(),
             nn.ConvTranspose1d(b, a, 3 * down, stride=down, padding=down),
-            _ResidualUnit(a, 1),
-            _ResidualUnit(a, 3),
+            ResidualUnit(a, 1),
+            ResidualUnit(a, 3),
             nn.ELU(),
             nn.ConvTranspose1d(a, 1, 2 * FIRST_HOP, stride=FIRST_HOP, padding=FIRST_HOP // 2),
         )

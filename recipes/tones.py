@@ -25,7 +25,7 @@ from torch import nn
 from rvqlayer import MultiStageQuantizer
 
 from . import _outputs, _plots, _streams, _training
-from ._audio import log_spectral_distance_db, snr_db, stft_loss, write_clip_set
+from ._audio import ResidualUnit, log_spectral_distance_db, snr_db, stft_loss, write_clip_set
 from ._checkpoint import CHECKPOINT
 from ._synth import RATE, SPLIT_HELD_OUT, SPLIT_TRAIN, render_batch
 from ._table import Measure, RateTable, rate_table
@@ -50,20 +50,6 @@ def prepare(settings: Settings) -> Prepared:
     return Prepared(None, LATENT, source=f"synthetic 16 kHz audio, seed {settings['seed']}")
 
 
-class _ResidualUnit(nn.Module):
-    def __init__(self, channels: int, dilation: int) -> None:
-        super().__init__()
-        self.body = nn.Sequential(
-            nn.ELU(),
-            nn.Conv1d(channels, channels, 3, padding=dilation, dilation=dilation),
-            nn.ELU(),
-            nn.Conv1d(channels, channels, 1),
-        )
-
-    def forward(self, x: torch.Tensor) -> torch.Tensor:
-        return x + self.body(x)
-
-
 class ToneCodec(nn.Module):
     """Waveform ``[batch, 1, samples]`` -> frames ``[batch, 32, samples / 64]`` -> waveform.
 
@@ -75,15 +61,15 @@ class ToneCodec(nn.Module):
         c = CHANNELS
         self.encoder = nn.Sequential(
             nn.Conv1d(1, c, 2 * HOP, stride=HOP, padding=HOP // 2),
-            _ResidualUnit(c, 1),
-            _ResidualUnit(c, 3),
+            ResidualUnit(c, 1),
+            ResidualUnit(c, 3),
             nn.ELU(),
             nn.Conv1d(c, LATENT, 1),
         )
         self.decoder = nn.Sequential(
             nn.Conv1d(LATENT, c, 3, padding=1),
-            _ResidualUnit(c, 1),
-            _ResidualUnit(c, 3),
+            ResidualUnit(c, 1),
+            ResidualUnit(c, 3),
             nn.ELU(),
             nn.ConvTranspose1d(c, 1, 2 * HOP, stride=HOP, padding=HOP // 2),
         )

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import contextlib
-import io
 import json
 import math
 import os
@@ -21,6 +19,8 @@ import torch
 
 pytest.importorskip("pytorch_lightning")
 
+from _recipe_cli import run_cli  # noqa: E402
+
 from recipes import cli  # noqa: E402
 from recipes._out_dir import make_output_dir  # noqa: E402
 from recipes._table import Measure, RateRow, RateTable  # noqa: E402
@@ -28,11 +28,7 @@ from recipes._table import Measure, RateRow, RateTable  # noqa: E402
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
 
-def _run(argv: list[str]) -> tuple[int, str, str]:
-    out, err = io.StringIO(), io.StringIO()
-    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
-        rc = cli.main(argv)
-    return rc, out.getvalue(), err.getvalue()
+_run = run_cli
 
 
 def _rows(out: Path) -> tuple[dict, list[dict]]:

@@ -3,8 +3,6 @@ synthetic data, the scalar reference, ``--quick`` end to end, ``--data`` and bad
 
 from __future__ import annotations
 
-import contextlib
-import io
 import json
 import math
 from pathlib import Path
@@ -16,19 +14,16 @@ import torch
 pytest.importorskip("pytorch_lightning")
 soundfile = pytest.importorskip("soundfile")
 
+from _recipe_cli import run_cli  # noqa: E402
+
 from recipes import _speech_metrics as metrics  # noqa: E402
 from recipes import _speech_synth as synth  # noqa: E402
-from recipes import cli  # noqa: E402
 from recipes._speech_scalar import fit_scalar_quantizer  # noqa: E402
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
 
-def _run(argv: list[str]) -> tuple[int, str, str]:
-    out, err = io.StringIO(), io.StringIO()
-    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
-        rc = cli.main(argv)
-    return rc, out.getvalue(), err.getvalue()
+_run = run_cli
 
 
 def _snapshot(root: Path) -> dict[str, tuple[int, int]]:

@@ -21,15 +21,12 @@ from pathlib import Path
 from typing import Any
 
 from ._errors import RvqlayerError, fail
+from ._limits import MAX_DIM, MAX_ENTRIES, MAX_STAGES  # the layer's own bounds
 
 FILE_FORMAT = "rvqlayer-codebooks"
 FILE_VERSION = "2"
 READABLE_VERSIONS = ("1", "2")  # version 1 (no checksum) is still read; only version 2 files are verified
 
-# Bounds on the options a file may declare (checked before anything is built).
-MAX_DIM = 65536
-MAX_STAGES = 1024
-MAX_ENTRIES = 2**20
 MAX_HEADER_BYTES = 2**24  # the JSON header of a 1024-stage file is about 300 KB
 
 ITEMSIZE = {"F64": 8, "F32": 4, "F16": 2, "BF16": 2, "I64": 8, "I32": 4, "I16": 2, "I8": 1, "U8": 1, "BOOL": 1}

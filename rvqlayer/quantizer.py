@@ -14,6 +14,7 @@ from torch import nn
 
 from . import distributed as _dist
 from ._checks import all_finite, check_choice, check_features, check_float, check_int, check_mask, fail
+from ._limits import MAX_CODEBOOK_VALUES, MAX_DIM, MAX_ENTRIES, MAX_STAGES
 from .bitrate import bitrate as _bitrate
 from .bitrate import bits_per_vector as _bits_per_vector
 from .codebook import Codebook, Init, StepUpdate, Update, same_subset
@@ -23,11 +24,6 @@ from .refine import FitMethod, refine_codebooks
 from .rotation import ESTIMATORS, rotation_trick
 from .search import Metric, beam_encode, greedy_encode, nearest_code
 
-# Bounds that keep a layer (or a file that declares one) from exhausting memory.
-MAX_DIM = 2**16
-MAX_STAGES = 1024
-MAX_ENTRIES = 2**20
-MAX_CODEBOOK_VALUES = 2**29
 # Longest lookup-space vector accepted: (2 * norm)^2 times a few stays below float32's maximum.
 MAX_LOOKUP_NORM = 4e18
 # The fields of the persistent ``layout`` buffer, in order.
@@ -583,11 +579,7 @@ class MultiStageQuantizer(nn.Module):
         check_int("beam", beam, 1)
         rows, lead = self._flatten(x)
         z = _finite_lookup_input(self._project_in(rows))
-        books = [cb.codewords for cb in self.codebooks[:n_use]]
-        if beam > 1:
-            codes = beam_encode(z, books, beam=beam, metric=self.metric, chunk=self.chunk)
-        else:
-            codes = greedy_encode(z, books, metric=self.metric, chunk=self.chunk)
+        codes = self._encode_with(z, [cb.codewords for cb in self.codebooks[:n_use]], beam)
         return codes.reshape(*lead, n_use)
 
     @torch.no_grad()
@@ -597,22 +589,10 @@ class MultiStageQuantizer(nn.Module):
         Returns ``[..., dim]`` with the feature axis moved to ``axis``, in the
         layer's dtype (that of its projections, or of ``.to(dtype)``).
         """
-        if not isinstance(codes, torch.Tensor):
-            raise fail("codes", "a torch.Tensor", type(codes).__name__)
-        if codes.dtype.is_floating_point or codes.dtype.is_complex or codes.dtype == torch.bool:
-            raise fail("codes", "an integer tensor", f"dtype {codes.dtype}")
-        if codes.ndim == 0 or not (1 <= codes.shape[-1] <= self.stages):
-            raise fail("codes", f"of shape [..., s] with 1 <= s <= {self.stages}", f"shape {tuple(codes.shape)}")
+        self._check_codes(codes)
         needed = self.axis + 1 if self.axis >= 0 else -self.axis
         if codes.ndim < needed:
             raise fail("codes", f"at least {needed} dimensions for axis={self.axis}", f"shape {tuple(codes.shape)}")
-        traced = torch.compiler.is_compiling()  # value-reading checks are for eager callers only
-        if not traced and codes.numel() and (int(codes.min()) < -1 or int(codes.max()) >= self.entries):
-            raise fail(
-                "codes",
-                f"in [0, {self.entries - 1}] (or -1 for a skipped stage)",
-                f"values in [{int(codes.min())}, {int(codes.max())}]",
-            )
         lead = codes.shape[:-1]
         flat = rearrange(codes, "... s -> (...) s").long()
         total = torch.zeros(flat.shape[0], self.code_dim, device=flat.device)
@@ -621,17 +601,28 @@ class MultiStageQuantizer(nn.Module):
             total = total + self.codebooks[s].lookup(c.clamp_min(0)) * (c >= 0).unsqueeze(1)
         return self._unflatten(self._project_out(total), lead).to(self.dtype_probe.dtype)
 
+    def _check_codes(self, codes: Any) -> None:
+        """Integer codes ``[..., s]``, ``1 <= s <= stages``, values in ``[-1, entries - 1]`` (-1: stage skipped)."""
+        if not isinstance(codes, torch.Tensor):
+            raise fail("codes", "a torch.Tensor", type(codes).__name__)
+        if codes.dtype.is_floating_point or codes.dtype.is_complex or codes.dtype == torch.bool:
+            raise fail("codes", "an integer tensor", f"dtype {codes.dtype}")
+        if codes.ndim == 0 or not (1 <= codes.shape[-1] <= self.stages):
+            raise fail("codes", f"of shape [..., s] with 1 <= s <= {self.stages}", f"shape {tuple(codes.shape)}")
+        traced = torch.compiler.is_compiling()  # value-reading checks are for eager callers only
+        if not traced and codes.numel() and (int(codes.min()) < -1 or int(codes.max()) >= self.entries):
+            raise fail(
+                "codes",
+                f"in [0, {self.entries - 1}] (or -1 for a skipped stage)",
+                f"values in [{int(codes.min())}, {int(codes.max())}]",
+            )
+
     # ------------------------------------------------------------- refinement
     def _encode_with(self, z: torch.Tensor, books: list[torch.Tensor], beam: int) -> torch.Tensor:
         """Codes ``[n, len(books)]`` of lookup-space ``z`` ``[n, code_dim]`` with the given codewords."""
         if beam > 1:
             return beam_encode(z, books, beam=beam, metric=self.metric, chunk=self.chunk)
-        codes = torch.empty(z.shape[0], len(books), dtype=torch.int64, device=z.device)
-        residual = z.float()
-        for s, c in enumerate(books):
-            codes[:, s], _ = nearest_code(residual, c, metric=self.metric, chunk=self.chunk)
-            residual = residual - c.float()[codes[:, s]]
-        return codes
+        return greedy_encode(z, books, metric=self.metric, chunk=self.chunk)
 
     @torch.no_grad()
     def refine(
@@ -712,17 +703,8 @@ class MultiStageQuantizer(nn.Module):
         """
         usage: list[torch.Tensor | None] = [None] * self.stages
         if codes is not None:
-            if not isinstance(codes, torch.Tensor) or codes.dtype.is_floating_point or codes.dtype == torch.bool:
-                raise fail(
-                    "codes",
-                    "an integer torch.Tensor",
-                    type(codes).__name__ if not isinstance(codes, torch.Tensor) else f"dtype {codes.dtype}",
-                )
-            if codes.ndim == 0 or not (1 <= codes.shape[-1] <= self.stages):
-                raise fail("codes", f"of shape [..., s] with 1 <= s <= {self.stages}", f"shape {tuple(codes.shape)}")
+            self._check_codes(codes)
             flat = rearrange(codes, "... s -> (...) s").long()
-            if flat.numel() and (int(flat.min()) < -1 or int(flat.max()) >= self.entries):
-                raise fail("codes", f"in [-1, {self.entries - 1}]", f"values in [{int(flat.min())}, {int(flat.max())}]")
             for s in range(flat.shape[1]):
                 c = flat[:, s]
                 usage[s] = torch.bincount(c[c >= 0], minlength=self.entries).float()

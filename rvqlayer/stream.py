@@ -28,6 +28,7 @@ from typing import Any
 import numpy as np
 
 from ._errors import RvqlayerError, fail
+from ._limits import MAX_ENTRIES, MAX_STAGES
 
 __all__ = [
     "FIXED",
@@ -49,8 +50,6 @@ __all__ = [
 MAGIC = b"RVQC"
 STREAM_VERSION = 1
 FIXED, TABLES, REPEATS = 0, 1, 2  # coding modes: fixed length, static tables, static tables + repeat context
-MAX_STAGES = 1024
-MAX_ENTRIES = 2**20
 MAX_PACKET_FRAMES = 65535
 MAX_PACKET_CODES = 2**22  # frames * stages per packet: bounds what a reader allocates for one packet
 _HEADER = struct.Struct("<4sHBBII d16s")  # magic, version, mode, reserved, stages, entries, frame_rate, checksum

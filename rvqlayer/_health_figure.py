@@ -10,6 +10,8 @@ import math
 from collections.abc import Mapping
 from typing import TYPE_CHECKING
 
+from .health import health_report
+
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
 
@@ -30,9 +32,10 @@ def health_figure(quantizers: Mapping[str, MultiStageQuantizer], step: int, dead
     fig.subplots_adjust(left=0.08, right=0.98, bottom=0.16, top=0.9, wspace=0.25, hspace=0.45)
     axes = fig.subplots(rows, 2, squeeze=False)
     for (name, q), (ax_use, ax_left) in zip(quantizers.items(), axes, strict=True):
-        report = q.health(dead_below)
-        for s, codebook in zip(report.stages, q.codebooks, strict=True):
-            counts = codebook.ema_count.detach().float().cpu().sort(descending=True).values
+        stats = q.stage_statistics()
+        report = health_report(stats, dead_below)
+        for s, figures in zip(report.stages, stats, strict=True):
+            counts = figures.usage_counts.sort(descending=True).values  # what usage and perplexity read
             ax_use.step(
                 range(1, len(counts) + 1),
                 counts.clamp_min(1e-12).numpy(),

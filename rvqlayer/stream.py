@@ -237,11 +237,9 @@ class UsageTables:
 
     @classmethod
     def from_quantizer(cls, quantizer: Any) -> UsageTables:
-        """Tables from a layer's moving-average usage counts (``usage_count`` of each stage: the
-        assignments actually made; ``ema_count`` for layers without it)."""
-        counts = np.stack(
-            [getattr(cb, "usage_count", cb.ema_count).detach().float().cpu().numpy() for cb in quantizer.codebooks]
-        )
+        """Tables from a layer's moving-average usage counts (``stage_statistics()``: the
+        assignments actually made, reseeding not counted)."""
+        counts = np.stack([s.usage_counts.numpy() for s in quantizer.stage_statistics()])
         return cls.from_counts(counts, codebook_fingerprint(quantizer))
 
     @classmethod

@@ -5,28 +5,13 @@ import pickle
 
 import pytest
 import torch
+from _layers import same_state, snapshot, trained
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from rvqlayer import MultiStageQuantizer, RvqlayerError
 
-
-def _trained(seed: int = 0, **kw) -> MultiStageQuantizer:
-    torch.manual_seed(seed)
-    opts = dict(stages=3, entries=16)
-    opts.update(kw)
-    q = MultiStageQuantizer(6, **opts)
-    for _ in range(3):
-        q(torch.randn(128, 6))
-    return q
-
-
-def _buffers(q):
-    return {k: v.detach().clone() for k, v in q.state_dict().items()}
-
-
-def _same(a, b):
-    return a.keys() == b.keys() and all(torch.equal(a[k], b[k]) for k in a)
+_trained, _buffers, _same = trained, snapshot, same_state
 
 
 # ------------------------------------------------------------------ gradients

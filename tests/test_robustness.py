@@ -5,29 +5,21 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import torch
+from _layers import same_state, snapshot, trained
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from rvqlayer import MultiStageQuantizer, RvqlayerError, bitrate
 
-
-def _state(q):
-    return {k: v.detach().clone() for k, v in q.state_dict().items()}
+_state = snapshot
 
 
 def _unchanged(q, before) -> bool:
-    after = q.state_dict()
-    return after.keys() == before.keys() and all(torch.equal(after[k], before[k]) for k in before)
+    return same_state(q.state_dict(), before)
 
 
 def _trained(**kw) -> MultiStageQuantizer:
-    torch.manual_seed(0)
-    opts = dict(stages=3, entries=16)
-    opts.update(kw)
-    q = MultiStageQuantizer(6, **opts)
-    for _ in range(3):
-        q(torch.randn(128, 6))
-    return q
+    return trained(0, **kw)
 
 
 # --------------------------------------------------------- all-or-nothing step
